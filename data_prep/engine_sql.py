@@ -1,0 +1,182 @@
+"""The SQL counting engine (DuckDB): out of core, never loads the impression log into pandas.
+
+The rules are written once as SQL text built from the same
+:class:`~liftpool.data_prep.cells.CellSpec` and viewability expressions that
+the pandas engine applies in NumPy.  The exposure table (one row per user and
+campaign) is the only intermediate: it is kept as a DuckDB table so a later
+re-count with new outcomes does not read the impressions again.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from liftpool.data_prep.cells import UNEXPOSED_CELL, cell_spec
+from liftpool.data_prep.raw import RawCounts
+from liftpool.data_prep.rules import FREQUENCY, VIEW_HISTORY, CountingRules
+from liftpool.data_prep.sources import Inputs
+from liftpool.data_prep.viewability import sql_measured, sql_viewable
+
+__all__ = ["build_exposures", "count_sql", "EXPOSURES_TABLE"]
+
+EXPOSURES_TABLE = "exposures"
+
+
+def _q(name: str) -> str:
+    return '"' + name.replace('"', '""') + '"'
+
+
+def build_exposures(inputs: Inputs, rules: CountingRules, table: str = EXPOSURES_TABLE) -> None:
+    """One scan of the impressions into ``table``: one row per (user, campaign).
+
+    Columns: ``user_id, campaign, first_served, n_imps, n_measured, n_viewable,
+    view_history`` (the user's viewable share on other campaigns' measured
+    impressions, NULL when there are none).
+    """
+    if inputs.has_viewable_column:
+        measured, viewable = "(viewable IS NOT NULL)", "COALESCE(viewable, FALSE)"
+    else:
+        measured, viewable = sql_measured(rules), sql_viewable(rules)
+    inputs.con.execute(f"""
+        CREATE OR REPLACE TABLE {table} AS
+        WITH agg AS (
+            SELECT user_id, campaign,
+                   min(served_at) AS first_served,
+                   count(*) AS n_imps,
+                   sum(CASE WHEN {measured} THEN 1 ELSE 0 END) AS n_measured,
+                   sum(CASE WHEN {viewable} THEN 1 ELSE 0 END) AS n_viewable
+            FROM t_impressions
+            GROUP BY user_id, campaign
+        ), tot AS (
+            SELECT *, sum(n_measured) OVER (PARTITION BY user_id) - n_measured AS other_measured,
+                      sum(n_viewable) OVER (PARTITION BY user_id) - n_viewable AS other_viewable
+            FROM agg
+        )
+        SELECT user_id, campaign, first_served, n_imps, n_measured, n_viewable,
+               CASE WHEN other_measured > 0
+                    THEN CAST(other_viewable AS DOUBLE) / CAST(other_measured AS DOUBLE) END AS view_history
+        FROM tot
+    """)
+
+
+def _numeric_values(inputs: Inputs, rules: CountingRules) -> dict[str, np.ndarray | None]:
+    out: dict[str, np.ndarray | None] = {}
+    for cov in rules.covariates:
+        if cov in (FREQUENCY, VIEW_HISTORY):
+            continue
+        if inputs.numeric_covariates.get(cov):
+            out[cov] = inputs.con.execute(
+                f"SELECT {_q(cov)} FROM t_users WHERE {_q(cov)} IS NOT NULL").fetchnumpy()[cov]
+        else:
+            out[cov] = None
+    return out
+
+
+def count_sql(inputs: Inputs, rules: CountingRules, exposures: str = EXPOSURES_TABLE) -> RawCounts:
+    """Cell-level counts from the exposure table and the conversions (DuckDB).
+
+    Parameters
+    ----------
+    inputs : Inputs
+        Validated inputs with their typed views.
+    rules : CountingRules
+    exposures : str
+        Name of the table made by :func:`build_exposures`.
+    """
+    con = inputs.con
+    spec = cell_spec(rules, _numeric_values(inputs, rules))
+    has_users = inputs.has("users")
+    cols = {FREQUENCY: "x.n_imps", VIEW_HISTORY: "x.view_history"}
+    for cov in rules.covariates:
+        if cov not in cols:
+            cols[cov] = f"u.{_q(cov)}"
+    join_users = "LEFT JOIN t_users u ON u.user_id = x.user_id" if has_users else ""
+    user_covs = [c for c in rules.covariates if c not in (FREQUENCY, VIEW_HISTORY)]
+    no_cov = (" OR ".join(f"u.{_q(c)} IS NULL" for c in user_covs)) if user_covs else "FALSE"
+    w = rules.window_seconds
+    con.execute(f"""
+        CREATE OR REPLACE TEMP TABLE _cells AS
+        SELECT x.user_id, x.campaign, x.first_served,
+               CASE WHEN x.n_viewable > 0 THEN 'seen' ELSE 'unseen' END AS arm,
+               {spec.sql(cols)} AS cell
+        FROM {exposures} x {join_users}
+        WHERE x.n_measured > 0
+    """)
+    users = con.execute(
+        "SELECT campaign, cell, arm, count(*) AS users FROM _cells GROUP BY campaign, cell, arm").df()
+    pairs = con.execute(f"""
+        WITH ev AS (
+            SELECT c.campaign, c.cell, c.arm, c.user_id, o.outcome,
+                   cv.converted_at > c.first_served
+                       AND cv.converted_at <= c.first_served + INTERVAL {w} SECOND AS inside,
+                   cv.converted_at <= c.first_served AS before,
+                   cv.converted_at > c.first_served + INTERVAL {w} SECOND AS after
+            FROM _cells c
+            JOIN t_outcomes o ON o.campaign = c.campaign
+            JOIN t_conversions cv ON cv.user_id = c.user_id AND cv.outcome = o.outcome
+        ), per_user AS (
+            SELECT campaign, cell, arm, outcome, user_id,
+                   max(CASE WHEN inside THEN 1 ELSE 0 END) AS converted,
+                   sum(CASE WHEN before THEN 1 ELSE 0 END) AS n_before,
+                   sum(CASE WHEN inside THEN 1 ELSE 0 END) AS n_inside,
+                   sum(CASE WHEN after THEN 1 ELSE 0 END) AS n_after
+            FROM ev GROUP BY campaign, cell, arm, outcome, user_id
+        )
+        SELECT campaign, cell, arm, outcome, sum(converted) AS conversions,
+               sum(n_before) AS before_first_serve, sum(n_inside) AS in_window, sum(n_after) AS after_window
+        FROM per_user GROUP BY campaign, cell, arm, outcome
+    """).df()
+    conversions = pairs[pairs["conversions"] > 0][["campaign", "cell", "arm", "outcome", "conversions"]]
+    windows = (pairs.groupby(["campaign", "outcome"], as_index=False)[
+        ["before_first_serve", "in_window", "after_window"]].sum())
+    campaigns = con.execute(f"""
+        SELECT x.campaign, sum(n_imps) AS impressions, sum(n_measured) AS measured_impressions,
+               sum(n_viewable) AS viewable_impressions, count(*) AS users_served,
+               sum(CASE WHEN n_measured = 0 THEN 1 ELSE 0 END) AS users_unmeasured_only,
+               sum(CASE WHEN n_measured > 0 AND ({no_cov}) THEN 1 ELSE 0 END) AS users_without_covariates
+        FROM {exposures} x {join_users}
+        GROUP BY x.campaign
+    """).df()
+    totals = {
+        "impression_rows": inputs.tables["impressions"].n_rows,
+        "conversion_rows": inputs.tables["conversions"].n_rows,
+        "conversion_rows_unknown_outcome": con.execute(
+            "SELECT count(*) FROM t_conversions WHERE outcome NOT IN (SELECT outcome FROM t_outcomes)"
+        ).fetchone()[0],
+    }
+    if rules.unexposed and has_users:
+        users, conversions = _add_unexposed(inputs, rules, exposures, users, conversions)
+        totals["users_table_rows"] = inputs.tables["users"].n_rows
+    return RawCounts(users=users, conversions=conversions, windows=windows, campaigns=campaigns,
+                     totals=totals)
+
+
+def _add_unexposed(inputs: Inputs, rules: CountingRules, exposures: str,
+                   users: pd.DataFrame, conversions: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Users-table users never served the campaign, counted over the window from the campaign's first serve."""
+    con = inputs.con
+    w = rules.window_seconds
+    un_users = con.execute(f"""
+        WITH served AS (
+            SELECT x.campaign, count(*) AS n FROM {exposures} x
+            SEMI JOIN t_users u ON u.user_id = x.user_id GROUP BY x.campaign
+        )
+        SELECT c.campaign, '{UNEXPOSED_CELL}' AS cell, 'unexposed' AS arm,
+               (SELECT count(*) FROM t_users) - COALESCE(s.n, 0) AS users
+        FROM (SELECT DISTINCT campaign FROM {exposures}) c LEFT JOIN served s ON s.campaign = c.campaign
+    """).df()
+    un_conv = con.execute(f"""
+        WITH t0 AS (SELECT campaign, min(first_served) AS t0 FROM {exposures} GROUP BY campaign)
+        SELECT t0.campaign, '{UNEXPOSED_CELL}' AS cell, 'unexposed' AS arm, o.outcome,
+               count(DISTINCT cv.user_id) AS conversions
+        FROM t0
+        JOIN t_outcomes o ON o.campaign = t0.campaign
+        JOIN t_conversions cv ON cv.outcome = o.outcome
+             AND cv.converted_at > t0.t0 AND cv.converted_at <= t0.t0 + INTERVAL {w} SECOND
+        SEMI JOIN t_users u ON u.user_id = cv.user_id
+        ANTI JOIN {exposures} x ON x.user_id = cv.user_id AND x.campaign = t0.campaign
+        GROUP BY t0.campaign, o.outcome
+    """).df()
+    return (pd.concat([users, un_users], ignore_index=True),
+            pd.concat([conversions, un_conv[un_conv.conversions > 0]], ignore_index=True))

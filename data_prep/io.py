@@ -1,0 +1,82 @@
+"""Atomic writes: a temporary file in the target folder, then a rename.
+
+Readers never see a half-written file, and an interrupted write leaves the
+previous file (if any) untouched.  Stored state is Parquet, CSV, JSON, TOML or
+netCDF; never pickle.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import os
+import tempfile
+from collections.abc import Callable, Iterator
+from pathlib import Path
+
+import pandas as pd
+
+__all__ = ["atomic_path", "write_table", "write_json", "write_text", "read_table"]
+
+
+@contextlib.contextmanager
+def atomic_path(path: str | os.PathLike) -> Iterator[Path]:
+    """Yield a temporary path beside ``path``; on success rename it over ``path``."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    os.close(fd)
+    tmp_path = Path(tmp)
+    try:
+        yield tmp_path
+        os.replace(tmp_path, path)
+    finally:
+        if tmp_path.exists():
+            tmp_path.unlink()
+
+
+def _write(path: str | os.PathLike, writer: Callable[[Path], None]) -> Path:
+    with atomic_path(path) as tmp:
+        writer(tmp)
+    return Path(path)
+
+
+def write_table(df: pd.DataFrame, path: str | os.PathLike) -> Path:
+    """Write a DataFrame as Parquet or CSV (by extension), atomically."""
+    name = str(path).lower()
+    if name.endswith((".parquet", ".pq")):
+        return _write(path, lambda p: df.to_parquet(p, index=False))
+    if name.endswith(".csv"):
+        return _write(path, lambda p: df.to_csv(p, index=False))
+    raise ValueError(f"unsupported table extension: {path}")
+
+
+def read_table(path: str | os.PathLike) -> pd.DataFrame:
+    """Read a Parquet or CSV table (by extension)."""
+    name = str(path).lower()
+    if name.endswith((".parquet", ".pq")):
+        return pd.read_parquet(path)
+    return pd.read_csv(path, keep_default_na=False, na_values=[""])
+
+
+def write_json(obj, path: str | os.PathLike) -> Path:
+    text = json.dumps(obj, indent=2, sort_keys=False, default=_json_default)
+    return write_text(text + "\n", path)
+
+
+def write_text(text: str, path: str | os.PathLike) -> Path:
+    return _write(path, lambda p: p.write_text(text, encoding="utf-8"))
+
+
+def _json_default(o):
+    import numpy as np
+
+    if isinstance(o, np.integer):
+        return int(o)
+    if isinstance(o, np.floating):
+        return float(o)
+    if isinstance(o, (np.ndarray, tuple, set)):
+        return list(o)
+    if isinstance(o, Path):
+        return str(o)
+    raise TypeError(f"not JSON serializable: {type(o)}")
