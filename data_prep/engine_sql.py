@@ -57,7 +57,7 @@ def build_exposures(inputs: Inputs, rules: CountingRules, table: str = EXPOSURES
                CASE WHEN other_measured > 0
                     THEN CAST(other_viewable AS DOUBLE) / CAST(other_measured AS DOUBLE) END AS view_history
         FROM tot
-    """)
+    """).fetchall()
 
 
 def _numeric_values(inputs: Inputs, rules: CountingRules) -> dict[str, np.ndarray | None]:
@@ -102,7 +102,7 @@ def count_sql(inputs: Inputs, rules: CountingRules, exposures: str = EXPOSURES_T
                {spec.sql(cols)} AS cell
         FROM {exposures} x {join_users}
         WHERE x.n_measured > 0
-    """)
+    """).fetchall()
     users = con.execute(
         "SELECT campaign, cell, arm, count(*) AS users FROM _cells GROUP BY campaign, cell, arm").df()
     pairs = con.execute(f"""
@@ -143,7 +143,7 @@ def count_sql(inputs: Inputs, rules: CountingRules, exposures: str = EXPOSURES_T
         "conversion_rows": inputs.tables["conversions"].n_rows,
         "conversion_rows_unknown_outcome": con.execute(
             "SELECT count(*) FROM t_conversions WHERE outcome NOT IN (SELECT outcome FROM t_outcomes)"
-        ).fetchone()[0],
+        ).fetchall()[0][0],
     }
     if rules.unexposed and has_users:
         users, conversions = _add_unexposed(inputs, rules, exposures, users, conversions)

@@ -25,7 +25,6 @@ attribution window, starting at the user's first truly viewable impression.
 
 from __future__ import annotations
 
-import json
 import os
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -155,9 +154,9 @@ def simulate(
     outcomes = list(scenario.outcome_base_rate)
     category_intent = {o: 0.6 * home_intent + 0.8 * rng.normal(size=n) for o in outcomes}
 
-    imp_parts, served_rows = [], []
+    imp_parts = []
     lift = {}
-    for k, plan in enumerate(scenario.campaigns):
+    for plan in scenario.campaigns:
         L = 0.0 if zero_lift else (lift_override or {}).get(plan.name, plan.lift_logodds)
         lift[plan.name] = L
         intent = category_intent[plan.target]
@@ -306,7 +305,3 @@ def write_scenario(
 
 def load_truth(folder: str | os.PathLike) -> pd.DataFrame:
     return pd.read_csv(Path(folder) / "truth.csv")
-
-
-def _json_dumps(obj) -> str:  # pragma: no cover - convenience
-    return json.dumps(obj, indent=2)

@@ -74,11 +74,11 @@ MEASUREMENT = (
 def connect(threads: int | None = None, memory_limit: str | None = None) -> duckdb.DuckDBPyConnection:
     """A DuckDB connection set to UTC, with a spill folder for out-of-core work."""
     con = duckdb.connect(":memory:")
-    con.execute("SET TimeZone = 'UTC'")
+    con.execute("SET TimeZone = 'UTC'").fetchall()
     if threads:
-        con.execute(f"SET threads = {int(threads)}")
+        con.execute(f"SET threads = {int(threads)}").fetchall()
     if memory_limit:
-        con.execute(f"SET memory_limit = '{memory_limit}'")
+        con.execute(f"SET memory_limit = '{memory_limit}'").fetchall()
     return con
 
 
@@ -149,7 +149,7 @@ def _load(con: duckdb.DuckDBPyConnection, kind: str, source) -> Table:
             raise InputError(problem="the table has no columns", file=label,
                              fix=f"pass a DataFrame with the {kind} columns")
         con.register(f"df_{kind}", source)
-        con.execute(f"CREATE OR REPLACE VIEW {raw} AS SELECT * FROM df_{kind}")
+        con.execute(f"CREATE OR REPLACE VIEW {raw} AS SELECT * FROM df_{kind}").fetchall()
     else:
         path = Path(source)
         label = str(source)
@@ -163,13 +163,13 @@ def _load(con: duckdb.DuckDBPyConnection, kind: str, source) -> Table:
         reader = (f"read_csv({p}, header = true, all_varchar = true)" if fmt == "csv"
                   else f"read_parquet({p})")
         try:
-            con.execute(f"CREATE OR REPLACE VIEW {raw} AS SELECT * FROM {reader}")
+            con.execute(f"CREATE OR REPLACE VIEW {raw} AS SELECT * FROM {reader}").fetchall()
         except duckdb.Error as exc:
             raise InputError(problem=f"cannot read the file: {str(exc).splitlines()[0]}", file=label,
                              fix=f"check that it is a valid {fmt.upper()} file") from None
     try:
         desc = con.execute(f"DESCRIBE {raw}").fetchall()
-        n_rows = con.execute(f"SELECT count(*) FROM {raw}").fetchone()[0]
+        n_rows = con.execute(f"SELECT count(*) FROM {raw}").fetchall()[0][0]
     except duckdb.Error as exc:
         raise InputError(problem=f"cannot read the file: {str(exc).splitlines()[0]}", file=label,
                          fix="check that the file is complete and well formed") from None
@@ -272,7 +272,7 @@ def _run_checks(con, table: Table, checks: list[tuple[str, str, str, str]]) -> N
     if not checks:
         return
     sums = ", ".join(f"SUM(CASE WHEN {pred} THEN 1 ELSE 0 END)" for _, pred, _, _ in checks)
-    counts = con.execute(f"SELECT {sums} FROM {table.raw}").fetchone()
+    counts = con.execute(f"SELECT {sums} FROM {table.raw}").fetchall()[0]
     for (colname, pred, problem, fix), n in zip(checks, counts, strict=True):
         if n:
             shown = _q(colname) if colname in table.types else "NULL"
@@ -305,7 +305,7 @@ def _typed_view(con, table: Table, columns: list[Column], id_type: str, extra_se
     _run_checks(con, table, checks)
     table.view = f"t_{table.kind}"
     select = ", ".join(exprs + (extra_select or []))
-    con.execute(f"CREATE OR REPLACE VIEW {table.view} AS SELECT {select} FROM {table.raw}")
+    con.execute(f"CREATE OR REPLACE VIEW {table.view} AS SELECT {select} FROM {table.raw}").fetchall()
 
 
 def _duplicates(con, table: Table, keys: list[str], problem: str, fix: str) -> None:
@@ -315,7 +315,7 @@ def _duplicates(con, table: Table, keys: list[str], problem: str, fix: str) -> N
         f"FROM {table.raw}) WHERE n > 1 ORDER BY rn LIMIT 5"
     ).fetchall()
     if rows:
-        n = con.execute(f"SELECT count(*) FROM (SELECT {k} FROM {table.raw} GROUP BY {k} HAVING count(*) > 1)").fetchone()[0]
+        n = con.execute(f"SELECT count(*) FROM (SELECT {k} FROM {table.raw} GROUP BY {k} HAVING count(*) > 1)").fetchall()[0][0]
         raise InputError(problem=problem.format(n=n), file=table.label, column=", ".join(keys),
                          rows=[BadRow(int(r[0]), ", ".join(repr(v) for v in r[1:])) for r in rows], fix=fix)
 
@@ -417,7 +417,7 @@ def _is_numeric(con, table: Table, col: str) -> bool:
     n_bad, n_ok = con.execute(
         f"SELECT SUM(CASE WHEN trim({c}) <> '' AND try_cast(trim({c}) AS DOUBLE) IS NULL THEN 1 ELSE 0 END), "
         f"SUM(CASE WHEN try_cast(trim({c}) AS DOUBLE) IS NOT NULL THEN 1 ELSE 0 END) FROM {table.raw}"
-    ).fetchone()
+    ).fetchall()[0]
     return bool(n_ok) and not n_bad
 
 

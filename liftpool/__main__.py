@@ -1,0 +1,3 @@
+from liftpool.cli import main
+
+raise SystemExit(main())

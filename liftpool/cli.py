@@ -1,0 +1,174 @@
+"""The ``liftpool`` command line: a thin shell over the three layers.
+
+Exit codes: 0 ok, 1 internal error, 2 bad input, 3 fit not converged
+(with ``--strict``), 130 interrupted.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import traceback
+from pathlib import Path
+
+from liftpool import __version__
+from liftpool.console import Console
+
+__all__ = ["main", "build_parser"]
+
+EXIT_OK, EXIT_INTERNAL, EXIT_INPUT, EXIT_NOT_CONVERGED, EXIT_INTERRUPTED = 0, 1, 2, 3, 130
+
+
+def _common(p: argparse.ArgumentParser) -> None:
+    g = p.add_argument_group("output")
+    g.add_argument("--quiet", "-q", action="store_true", help="print only results and errors")
+    g.add_argument("--verbose", "-v", action="store_true", help="print more detail (and tracebacks)")
+
+
+def _rules_args(p: argparse.ArgumentParser) -> None:
+    g = p.add_argument_group("counting rules (defaults in docs/counting-rules.md)")
+    g.add_argument("--covariates", help="comma-separated cell covariates: users-table columns and/or the "
+                   "built-ins frequency, view_history (default: frequency,view_history; 'none' for no cells)")
+    g.add_argument("--window-days", type=float, help="attribution window in days (default 14)")
+    g.add_argument("--min-cell-users", type=int, help="users needed in each arm of a cell (default 20)")
+    g.add_argument("--small-cells", choices=["merge", "drop"], help="what to do with small cells (default merge)")
+    g.add_argument("--with-unexposed", action="store_true",
+                   help="add an unexposed arm from users never served the campaign (the users table must "
+                        "cover the whole population); enables the naive comparison")
+
+
+def _rules_from_args(args) -> dict:
+    out: dict = {}
+    if args.covariates is not None:
+        text = args.covariates.strip()
+        out["covariates"] = () if text.lower() in ("", "none") else tuple(c.strip() for c in text.split(",") if c.strip())
+    if args.window_days is not None:
+        out["window_days"] = args.window_days
+    if args.min_cell_users is not None:
+        out["min_cell_users"] = args.min_cell_users
+    if args.small_cells is not None:
+        out["small_cells"] = args.small_cells
+    if args.with_unexposed:
+        out["unexposed"] = True
+    return out
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="liftpool",
+        description="Bias-corrected, partially pooled lift of display campaigns from seen/unseen log data "
+                    "and placebo (negative-control) outcomes.",
+    )
+    parser.add_argument("--version", action="version", version=f"liftpool {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+
+    p = sub.add_parser("prepare", help="logs to seen/unseen counts by campaign, cell and outcome",
+                       description="Turn impression and conversion logs into a counts table and print the "
+                                   "data-preparation summary.")
+    p.add_argument("--impressions", required=True, help="impressions file (.csv or .parquet)")
+    p.add_argument("--conversions", required=True, help="conversions file")
+    p.add_argument("--outcomes", required=True, help="outcomes file: campaign, outcome, role (target|placebo)")
+    p.add_argument("--users", help="optional users file: user_id plus covariate columns")
+    p.add_argument("--spend", help="optional spend file: campaign, spend, value_per_conversion (checked here)")
+    p.add_argument("--out", required=True, help="counts file to write (.parquet or .csv); the summary is "
+                   "written beside it as <name>.summary.json")
+    p.add_argument("--engine", default="duckdb", choices=["duckdb", "pandas"],
+                   help="counting engine (default duckdb: out of core)")
+    _rules_args(p)
+    _common(p)
+    p.set_defaults(func=_cmd_prepare)
+
+    p = sub.add_parser("simulate", help="write the invented demo scenario's input files",
+                       description="Simulate Fernhollow Home & Garden, an invented retailer, and write its "
+                                   "logs plus truth.csv (the true lift of each campaign).")
+    p.add_argument("--out", required=True, help="folder to write")
+    p.add_argument("--seed", type=int, default=20261201)
+    p.add_argument("--scale", type=float, default=1.0, help="multiply users and reach (default 1)")
+    p.add_argument("--format", choices=["parquet", "csv"], default="parquet", help="log file format")
+    p.add_argument("--zero-lift", action="store_true", help="every campaign's true lift is zero")
+    _common(p)
+    p.set_defaults(func=_cmd_simulate)
+
+    p = sub.add_parser("demo", help="the whole pipeline on the invented scenario",
+                       description="Simulate the invented scenario into a fresh folder and run the pipeline on it.")
+    p.add_argument("workspace", nargs="?", default="demo-workspace", help="folder to create (default demo-workspace)")
+    p.add_argument("--seed", type=int, default=20261201)
+    _common(p)
+    p.set_defaults(func=_cmd_demo)
+
+    _register_later(sub)
+    return parser
+
+
+def _register_later(sub) -> None:
+    """Commands of the model and report layers, added when those layers are present."""
+    try:
+        from liftpool import cli_fit
+    except ImportError:  # pragma: no cover - layer missing
+        return
+    cli_fit.register(sub, _common)
+
+
+def _cmd_prepare(args, console: Console) -> int:
+    from liftpool.data_prep import CountingRules, prepare_counts
+    from liftpool.data_prep.io import write_json, write_table
+    from liftpool.data_prep.sources import file_format
+
+    out = Path(args.out)
+    if file_format(out) not in ("parquet", "csv"):  # raises for unknown extensions
+        return EXIT_INPUT
+    rules = CountingRules(**_rules_from_args(args))
+    res = prepare_counts(args.impressions, args.conversions, args.outcomes, users=args.users, spend=args.spend,
+                         rules=rules, engine=args.engine, progress=console.step)
+    write_table(res.counts, out)
+    summary_path = out.with_name(out.name.split(".")[0] + ".summary.json")
+    write_json(res.summary.to_dict(), summary_path)
+    console.out(res.summary.render())
+    console.out()
+    console.out(f"counts: {out} ({len(res.counts):,} rows)")
+    console.out(f"summary: {summary_path}")
+    return EXIT_OK
+
+
+def _cmd_simulate(args, console: Console) -> int:
+    from liftpool.data_prep import write_scenario
+
+    console.step(f"simulating the invented scenario (seed {args.seed}, scale {args.scale:g})")
+    paths = write_scenario(args.out, seed=args.seed, scale=args.scale, fmt=args.format, zero_lift=args.zero_lift)
+    for kind, path in paths.items():
+        console.out(f"{kind}: {path}")
+    return EXIT_OK
+
+
+def _cmd_demo(args, console: Console) -> int:
+    from liftpool.demo import run_demo
+
+    return run_demo(Path(args.workspace), seed=args.seed, console=console)
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not getattr(args, "command", None):
+        parser.print_help()
+        return EXIT_OK
+    console = Console(quiet=getattr(args, "quiet", False), verbose=getattr(args, "verbose", False))
+    from liftpool.data_prep.errors import LiftpoolError
+
+    try:
+        return int(args.func(args, console) or 0)
+    except LiftpoolError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        if console.verbose:
+            traceback.print_exc()
+        return exc.exit_code
+    except KeyboardInterrupt:
+        print("interrupted: nothing was changed by the unfinished step", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    except Exception as exc:  # noqa: BLE001 - last resort
+        print(f"internal error: {type(exc).__name__}: {exc}", file=sys.stderr)
+        print("this is a bug in liftpool; run again with --verbose for the traceback and report it",
+              file=sys.stderr)
+        if console.verbose:
+            traceback.print_exc()
+        return EXIT_INTERNAL

@@ -1,0 +1,159 @@
+"""Bad input: one clear message naming the file, column, first rows and the fix; exit 2; nothing written."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+
+import pandas as pd
+import pytest
+
+from liftpool.data_prep import InputError, prepare_counts, validate_counts
+from liftpool.data_prep.rules import CountingRules
+from tests.conftest import write_csvs
+
+IMP = pd.DataFrame({"user_id": ["a", "b", "c"], "campaign": ["C1", "C1", "C2"],
+                    "served_at": ["2026-03-01T10:00:00Z"] * 3, "viewable": ["true", "false", "true"]})
+CONV = pd.DataFrame({"user_id": ["a"], "outcome": ["buy"], "converted_at": ["2026-03-02T10:00:00Z"]})
+OUT = pd.DataFrame({"campaign": ["C1", "C1", "C2"], "outcome": ["buy", "visit", "buy"],
+                    "role": ["target", "placebo", "target"]})
+
+
+def files(tmp_path, imp=IMP, conv=CONV, out=OUT, **extra):
+    return write_csvs(tmp_path, impressions=imp, conversions=conv, outcomes=out, **extra)
+
+
+def err(tmp_path, **kw) -> InputError:
+    p = files(tmp_path, **kw)
+    with pytest.raises(InputError) as e:
+        prepare_counts(p["impressions"], p["conversions"], p["outcomes"], users=p.get("users"),
+                       spend=p.get("spend"))
+    return e.value
+
+
+def test_misspelled_column_exact_message(tmp_path):
+    e = err(tmp_path, imp=IMP.rename(columns={"campaign": "campain"}))
+    path = tmp_path / "impressions.csv"
+    assert str(e) == (f"{path}, column 'campaign': required column is missing "
+                      "(the file has: user_id, campain, served_at, viewable)\n"
+                      "  fix: rename column 'campain' to 'campaign'")
+
+
+def test_unparseable_timestamp_exact_message(tmp_path):
+    imp = IMP.assign(served_at=["2026-03-01T10:00:00Z", "yesterday", "2026-13-01"])
+    e = err(tmp_path, imp=imp)
+    assert str(e) == (f"{tmp_path / 'impressions.csv'}, column 'served_at': 2 value(s) are empty or not "
+                      "ISO 8601 timestamps\n"
+                      "  row 2: 'yesterday'\n"
+                      "  row 3: '2026-13-01'\n"
+                      "  fix: write timestamps in ISO 8601, e.g. 2026-03-01T14:05:00Z (no offset means UTC)")
+
+
+@pytest.mark.parametrize(
+    "change, column, words",
+    [
+        (dict(imp=IMP.assign(viewable=["true", "maybe", "false"])), "viewable", "not true/false"),
+        (dict(imp=IMP.drop(columns="viewable")), "viewable", "neither a 'viewable' column"),
+        (dict(imp=IMP.assign(user_id=["a", None, "c"])), "user_id", "empty value"),
+        (dict(conv=CONV.assign(converted_at=["03/02/2026"])), "converted_at", "ISO 8601"),
+        (dict(out=pd.concat([OUT, OUT.iloc[[0]]])), "campaign, outcome", "duplicate (campaign, outcome)"),
+        (dict(out=OUT.assign(role=["target", "target", "target"])), "role", "has 2 target outcomes"),
+        (dict(out=OUT.assign(role=["placebo", "placebo", "target"])), "role", "has no target outcome"),
+        (dict(out=pd.concat([OUT, pd.DataFrame({"campaign": ["C1"], "outcome": ["buy"], "role": ["placebo"]})])),
+         "role", "both the target and a placebo"),
+        (dict(out=OUT.assign(role=["target", "negative", "target"])), "role", "not one of target, placebo"),
+        (dict(out=pd.concat([OUT, pd.DataFrame({"campaign": ["C9"], "outcome": ["x"], "role": ["target"]})])),
+         "campaign", "not in the impressions"),
+        (dict(out=OUT[OUT.campaign == "C1"]), "campaign", "have no outcomes"),
+        (dict(conv=CONV.assign(campaign=["C7"])), "campaign", "not in the impressions"),
+        (dict(spend=pd.DataFrame({"campaign": ["C1", "C2"], "spend": [100, -5]})), "spend", "below 0"),
+        (dict(spend=pd.DataFrame({"campaign": ["C1", "C3"], "spend": [100, 5]})), "campaign",
+         "not in the impressions"),
+        (dict(users=pd.DataFrame({"user_id": ["a", "a"], "x": [1, 2]})), "user_id", "more than one row"),
+    ],
+)
+def test_bad_inputs_name_file_column_rows_and_fix(tmp_path, change, column, words):
+    e = err(tmp_path, **change)
+    assert e.column == column
+    assert words in e.problem
+    assert e.file and e.file.endswith(".csv")
+    assert e.fix
+    assert e.exit_code == 2
+
+
+def test_offending_rows_are_listed(tmp_path):
+    imp = pd.concat([IMP] * 4, ignore_index=True)
+    imp.loc[[1, 5, 6, 7, 9, 10, 11], "viewable"] = "perhaps"
+    e = err(tmp_path, imp=imp)
+    assert [r.row for r in e.rows] == [2, 6, 7, 8, 10]  # first five, 1-based data rows
+    assert e.n_bad == 7 and "... 2 more" in str(e)
+
+
+def test_empty_and_header_only_files(tmp_path):
+    p = files(tmp_path)
+    p["impressions"].write_text("")
+    with pytest.raises(InputError, match="the file is empty"):
+        prepare_counts(p["impressions"], p["conversions"], p["outcomes"])
+    p["impressions"].write_text("user_id,campaign,served_at,viewable\n")
+    with pytest.raises(InputError, match="header but no data rows"):
+        prepare_counts(p["impressions"], p["conversions"], p["outcomes"])
+
+
+def test_unknown_extension_and_missing_file(tmp_path):
+    p = files(tmp_path)
+    with pytest.raises(InputError, match="unknown file type"):
+        prepare_counts(tmp_path / "imp.xlsx", p["conversions"], p["outcomes"])
+    with pytest.raises(InputError, match="file not found"):
+        prepare_counts(tmp_path / "nope.csv", p["conversions"], p["outcomes"])
+
+
+def test_covariate_not_in_users(tmp_path):
+    p = files(tmp_path, users=pd.DataFrame({"user_id": ["a", "b"], "device": ["m", "d"]}))
+    with pytest.raises(InputError, match="covariate 'screen' is not a column") as e:
+        prepare_counts(p["impressions"], p["conversions"], p["outcomes"], users=p["users"],
+                       rules=CountingRules(covariates=("screen",)))
+    assert "device" in str(e.value)
+
+
+COUNTS = pd.DataFrame({"campaign": ["C"] * 4, "cell": ["all"] * 4, "arm": ["seen", "seen", "unseen", "unseen"],
+                       "outcome": ["buy", "visit"] * 2, "role": ["target", "placebo"] * 2,
+                       "users": [100, 100, 50, 50], "conversions": [5, 3, 2, 1]})
+
+
+@pytest.mark.parametrize(
+    "change, column, words",
+    [
+        (lambda d: d.assign(users=[100, -1, 50, 50]), "users", "negative"),
+        (lambda d: d.assign(conversions=[5, 3.5, 2, 1]), "conversions", "not whole numbers"),
+        (lambda d: d.assign(conversions=[500, 3, 2, 1]), "conversions", "more conversions than users"),
+        (lambda d: d.assign(arm=["seen", "seen", "unseen", "control"]), "arm", "not one of"),
+        (lambda d: d.assign(role=["target", "placebo", "target", "target"]), "role", "both target and placebo"),
+        (lambda d: d.assign(role=["target"] * 4), "role", "2 target outcomes"),
+        (lambda d: d.assign(role=["placebo"] * 4), "role", "0 target outcomes"),
+        (lambda d: pd.concat([d, d.iloc[[0]]]), "campaign, cell, arm, outcome", "repeat"),
+        (lambda d: d.drop(columns="users"), "users", "missing"),
+        (lambda d: d.assign(users=["100", "x", "50", "50"]), "users", "not numbers"),
+    ],
+)
+def test_bad_counts_tables(change, column, words):
+    with pytest.raises(InputError) as e:
+        validate_counts(change(COUNTS), "counts.csv")
+    assert e.value.column == column and words in e.value.problem and e.value.file == "counts.csv"
+
+
+def test_counts_with_covariate_columns_build_cells():
+    d = COUNTS.drop(columns="cell").assign(device="mobile")
+    got = validate_counts(d)
+    assert set(got.cell) == {"device=mobile"}
+
+
+def test_cli_bad_input_exit_2_no_traceback_nothing_written(tmp_path):
+    p = files(tmp_path, imp=IMP.assign(served_at=["2026-03-01T10:00:00Z", "yesterday", "x"]))
+    out = tmp_path / "out" / "counts.parquet"
+    r = subprocess.run([sys.executable, "-m", "liftpool", "prepare", "--impressions", str(p["impressions"]),
+                        "--conversions", str(p["conversions"]), "--outcomes", str(p["outcomes"]),
+                        "--out", str(out)], capture_output=True, text=True)
+    assert r.returncode == 2
+    assert "Traceback" not in r.stderr
+    assert r.stderr.count("error: ") == 1 and "served_at" in r.stderr and "fix:" in r.stderr
+    assert not out.parent.exists() or not any(out.parent.iterdir())
