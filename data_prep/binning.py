@@ -33,25 +33,27 @@ class Bins:
         if len(self.lower) != len(self.labels) or not self.lower:
             raise ValueError("one label per lower bound is needed")
 
-    def sql(self, expr: str) -> str:
-        """A SQL CASE expression that labels ``expr``."""
-        parts = [f"CASE WHEN ({expr}) IS NULL THEN '{_sql_str(self.missing_label)}'"]
-        for upper, label in zip(self.lower[1:], self.labels[:-1], strict=True):
-            parts.append(f"WHEN ({expr}) < {float(upper)!r} THEN '{_sql_str(label)}'")
-        parts.append(f"ELSE '{_sql_str(self.labels[-1])}' END")
+    def sql_code(self, expr: str) -> str:
+        """A SQL CASE expression giving the bin index of ``expr`` (-1 when missing)."""
+        parts = [f"CASE WHEN ({expr}) IS NULL THEN -1"]
+        for j, upper in enumerate(self.lower[1:]):
+            parts.append(f"WHEN ({expr}) < {float(upper)!r} THEN {j}")
+        parts.append(f"ELSE {len(self.lower) - 1} END")
         return " ".join(parts)
 
-    def apply(self, values: np.ndarray) -> np.ndarray:
-        """Label an array of numbers (NaN is missing); returns an object array of labels."""
+    def codes(self, values: np.ndarray) -> np.ndarray:
+        """Bin index of each value (-1 for NaN), the NumPy twin of :meth:`sql_code`."""
         values = np.asarray(values, dtype=float)
         idx = np.searchsorted(np.asarray(self.lower[1:], dtype=float), values, side="right")
-        labels = np.asarray(self.labels, dtype=object)[np.minimum(idx, len(self.labels) - 1)]
-        labels[np.isnan(values)] = self.missing_label
-        return labels
+        idx = np.minimum(idx, len(self.labels) - 1).astype(np.int64)
+        idx[np.isnan(values)] = -1
+        return idx
 
-
-def _sql_str(s: str) -> str:
-    return s.replace("'", "''")
+    def label_codes(self, codes: np.ndarray) -> np.ndarray:
+        """Labels of bin indices (-1 is ``missing_label``)."""
+        lab = np.asarray(list(self.labels) + [self.missing_label], dtype=object)
+        c = np.asarray(codes, dtype=np.int64)
+        return lab[np.where(c < 0, len(self.labels), c)]
 
 
 def frequency_bins(breaks: Sequence[int]) -> Bins:

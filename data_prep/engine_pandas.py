@@ -9,7 +9,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from liftpool.data_prep.cells import UNEXPOSED_CELL, cell_spec
+from liftpool.data_prep.cells import UNEXPOSED_CELL, cell_spec, label_cells
 from liftpool.data_prep.raw import RawCounts
 from liftpool.data_prep.rules import FREQUENCY, VIEW_HISTORY, CountingRules
 from liftpool.data_prep.sources import Inputs
@@ -78,24 +78,29 @@ def count_pandas(
         col = ex[c]
         values[c] = (col.to_numpy(dtype=float, na_value=np.nan) if numeric_covariates.get(c)
                      else col.astype(object).where(col.notna(), None).to_numpy())
-    ex["cell"] = spec.labels(values, len(ex))
+    knames = spec.key_names
+    for k, arr in zip(knames, spec.keys(values), strict=True):
+        ex[k] = arr
     ex["arm"] = np.where(ex["n_viewable"] > 0, "seen", "unseen")
+    gk = ["campaign", "arm", *knames]
 
-    users_by_cell = ex.groupby(["campaign", "cell", "arm"], as_index=False).size().rename(columns={"size": "users"})
+    users_by_cell = ex.groupby(gk, as_index=False, dropna=False).size().rename(columns={"size": "users"})
+    users_by_cell = label_cells(spec, users_by_cell, ["campaign", "cell", "arm"])
 
-    ev = (ex[["user_id", "campaign", "first_served", "cell", "arm"]]
+    ev = (ex[["user_id", "campaign", "first_served", "arm", *knames]]
           .merge(outcomes, on="campaign").merge(conv[["user_id", "outcome", "converted_at"]],
                                                  on=["user_id", "outcome"]))
     end = ev["first_served"] + pd.Timedelta(seconds=rules.window_seconds)
     ev["inside"] = ((ev["converted_at"] > ev["first_served"]) & (ev["converted_at"] <= end)).astype(np.int64)
     ev["before"] = (ev["converted_at"] <= ev["first_served"]).astype(np.int64)
     ev["after"] = (ev["converted_at"] > end).astype(np.int64)
-    keys = ["campaign", "cell", "arm", "outcome"]
-    per_user = ev.groupby([*keys, "user_id"], as_index=False).agg(
+    per_user = ev.groupby([*gk, "outcome", "user_id"], as_index=False, dropna=False).agg(
         converted=("inside", "max"), before_first_serve=("before", "sum"),
         in_window=("inside", "sum"), after_window=("after", "sum"))
-    per_cell = per_user.groupby(keys, as_index=False)[["converted", "before_first_serve", "in_window",
-                                                      "after_window"]].sum()
+    per_cell = per_user.groupby([*gk, "outcome"], as_index=False, dropna=False)[
+        ["converted", "before_first_serve", "in_window", "after_window"]].sum()
+    keys = ["campaign", "cell", "arm", "outcome"]
+    per_cell = label_cells(spec, per_cell, keys)
     conversions = per_cell[per_cell["converted"] > 0].rename(columns={"converted": "conversions"})[
         [*keys, "conversions"]]
     windows = per_cell.groupby(["campaign", "outcome"], as_index=False)[

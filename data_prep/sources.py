@@ -267,13 +267,18 @@ def _expr_and_checks(col: Column, rtype: str, id_type: str) -> tuple[str, list[t
     raise ValueError(col.kind)
 
 
-def _run_checks(con, table: Table, checks: list[tuple[str, str, str, str]]) -> None:
-    """Count every check in one scan; raise on the first that fails, listing its rows."""
-    if not checks:
-        return
-    sums = ", ".join(f"SUM(CASE WHEN {pred} THEN 1 ELSE 0 END)" for _, pred, _, _ in checks)
+def _run_checks(con, table: Table, checks: list[tuple[str, str, str, str]],
+                probes: list[str] = ()) -> list[int]:
+    """Count every check (and probe) in one scan; raise on the first failing check, listing its rows.
+
+    Returns the counts of the ``probes`` (predicates that are not errors).
+    """
+    preds = [pred for _, pred, _, _ in checks] + list(probes)
+    if not preds:
+        return []
+    sums = ", ".join(f"SUM(CASE WHEN {pred} THEN 1 ELSE 0 END)" for pred in preds)
     counts = con.execute(f"SELECT {sums} FROM {table.raw}").fetchall()[0]
-    for (colname, pred, problem, fix), n in zip(checks, counts, strict=True):
+    for (colname, pred, problem, fix), n in zip(checks, counts[: len(checks)], strict=True):
         if n:
             shown = _q(colname) if colname in table.types else "NULL"
             rows = con.execute(
@@ -283,16 +288,24 @@ def _run_checks(con, table: Table, checks: list[tuple[str, str, str, str]]) -> N
             bad = [BadRow(int(rn), "empty" if v is None or str(v).strip() == "" else repr(v)) for rn, v in rows]
             raise InputError(problem=problem.format(n=int(n)), file=table.label, column=colname,
                              rows=bad, fix=fix, n_bad=int(n))
+    return [int(x or 0) for x in counts[len(checks):]]
 
 
 def _typed_view(con, table: Table, columns: list[Column], id_type: str, extra_select: list[str] | None = None) -> None:
     exprs: list[str] = []
     checks: list[tuple[str, str, str, str]] = []
+    probes: list[tuple[int, str, str]] = []  # (index in exprs, probe predicate, cheap expression)
     for col in columns:
         if col.name not in table.types:
             exprs.append(f"CAST(NULL AS DOUBLE) AS {_q(col.name)}")
             continue
         expr, cks = _expr_and_checks(col, table.types[col.name], id_type)
+        if col.kind == "choice":
+            # values already in canonical form need no lower(trim()) on every row
+            c = _q(col.name)
+            opts = ", ".join(_lit(x) for x in col.choices)
+            probes.append((len(exprs), f"({c} IS NULL OR CAST({c} AS VARCHAR) NOT IN ({opts}))",
+                           f"CAST({c} AS VARCHAR)"))
         exprs.append(f"{expr} AS {_q(col.name)}")
         checks.extend((col.name, *ck) for ck in cks)
     if table.kind == "impressions" and "ad_format" in table.types:
@@ -302,7 +315,11 @@ def _typed_view(con, table: Table, columns: list[Column], id_type: str, extra_se
         checks.append(("ad_width", f"({fmt} = 'display' AND ({w} IS NULL OR {h} IS NULL))",
                        "{n} display impression(s) have no ad_width or ad_height",
                        "give every display impression its size in pixels (it decides the 50% or 30% rule)"))
-    _run_checks(con, table, checks)
+    probe_counts = _run_checks(con, table, checks, [p for _, p, _ in probes])
+    for (i, _, cheap), n in zip(probes, probe_counts, strict=True):
+        if n == 0:
+            name = exprs[i].rsplit(" AS ", 1)[1]
+            exprs[i] = f"{cheap} AS {name}"
     table.view = f"t_{table.kind}"
     select = ", ".join(exprs + (extra_select or []))
     con.execute(f"CREATE OR REPLACE VIEW {table.view} AS SELECT {select} FROM {table.raw}").fetchall()

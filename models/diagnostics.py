@@ -1,0 +1,115 @@
+"""Convergence diagnostics as structured results, each failure with what to do.
+
+Thresholds: rank-normalized R-hat <= 1.01, bulk and tail ESS >= 400, no
+divergent transitions after tuning (Vehtari, Gelman, Simpson, Carpenter,
+Buerkner 2021, Bayesian Analysis 16(2)).
+"""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass, field
+
+import arviz as az
+import numpy as np
+
+__all__ = ["Check", "Diagnostics", "check_convergence", "RHAT_MAX", "ESS_MIN"]
+
+RHAT_MAX = 1.01
+ESS_MIN = 400
+
+
+@dataclass(frozen=True)
+class Check:
+    """One convergence check."""
+
+    name: str
+    passed: bool
+    value: float
+    threshold: float
+    worst: str
+    advice: str
+
+    def line(self) -> str:
+        mark = "ok  " if self.passed else "FAIL"
+        return f"[{mark}] {self.name}: {self.value:.4g} (threshold {self.threshold:g}; worst: {self.worst})"
+
+
+@dataclass
+class Diagnostics:
+    """All checks of one fit; ``converged`` is True only when every check passes."""
+
+    checks: list[Check] = field(default_factory=list)
+    method: str = "nuts"
+    note: str = ""
+
+    @property
+    def converged(self) -> bool:
+        return all(c.passed for c in self.checks)
+
+    @property
+    def failures(self) -> list[Check]:
+        return [c for c in self.checks if not c.passed]
+
+    def render(self) -> str:
+        if not self.checks:
+            return f"convergence: {self.note}"
+        head = "converged" if self.converged else "NOT CONVERGED"
+        lines = [f"convergence ({self.method}): {head}"] + ["  " + c.line() for c in self.checks]
+        for c in self.failures:
+            lines.append(f"  what to do: {c.advice}")
+        return "\n".join(lines)
+
+    def to_dict(self) -> dict:
+        return {"method": self.method, "converged": self.converged, "note": self.note,
+                "checks": [asdict(c) for c in self.checks]}
+
+    @classmethod
+    def from_dict(cls, d: dict) -> Diagnostics:
+        return cls(checks=[Check(**c) for c in d.get("checks", [])], method=d.get("method", "nuts"),
+                   note=d.get("note", ""))
+
+
+def _worst(ds, fn) -> tuple[float, str]:
+    best_val, best_name = None, ""
+    for name, da in ds.data_vars.items():
+        vals = np.asarray(da.values, dtype=float)
+        if vals.size == 0 or np.all(np.isnan(vals)):
+            continue
+        i = int(fn(np.nan_to_num(vals, nan=np.inf if fn is np.nanargmin else -np.inf)))
+        v = float(vals.flat[i])
+        if best_val is None or (fn is np.nanargmax and v > best_val) or (fn is np.nanargmin and v < best_val):
+            idx = np.unravel_index(i, vals.shape) if vals.ndim else ()
+            label = name
+            if vals.ndim:
+                dims = da.dims
+                label += "[" + ", ".join(str(da[d].values[j]) for d, j in zip(dims, idx, strict=True)) + "]"
+            best_val, best_name = v, label
+    return (float("nan"), "-") if best_val is None else (best_val, best_name)
+
+
+def check_convergence(idata: az.InferenceData, var_names: list[str] | None = None) -> Diagnostics:
+    """Rank-normalized R-hat, bulk and tail ESS, and divergences of a NUTS fit."""
+    post = idata.posterior
+    if var_names:
+        post = post[[v for v in var_names if v in post]]
+    rhat = az.rhat(post, method="rank")
+    ess_b = az.ess(post, method="bulk")
+    ess_t = az.ess(post, method="tail")
+    r_val, r_name = _worst(rhat, np.nanargmax)
+    b_val, b_name = _worst(ess_b, np.nanargmin)
+    t_val, t_name = _worst(ess_t, np.nanargmin)
+    div = int(idata.sample_stats["diverging"].sum()) if "diverging" in idata.sample_stats else 0
+    n_chains = post.sizes["chain"]
+    checks = [
+        Check("R-hat (rank-normalized)", bool(r_val <= RHAT_MAX) and n_chains > 1, r_val, RHAT_MAX, r_name,
+              "chains disagree: run more tuning and draws (--draws, tune), use at least 4 chains, or check the "
+              "worst parameter's prior and data" if n_chains > 1 else "R-hat needs at least 2 chains: use 4"),
+        Check("bulk ESS", bool(b_val >= ESS_MIN), b_val, ESS_MIN, b_name,
+              "too few effective draws for stable means and intervals: increase --draws"),
+        Check("tail ESS", bool(t_val >= ESS_MIN), t_val, ESS_MIN, t_name,
+              "too few effective draws in the tails, so interval ends are unstable: increase --draws"),
+        Check("divergences after tuning", div == 0, float(div), 0, f"{div} of {post.sizes['draw'] * n_chains}",
+              "the sampler hit a region it cannot explore: raise target_accept (e.g. 0.95 or 0.99), switch "
+              "parameterization (centered for campaigns with much data), or tighten the spread priors"),
+    ]
+    return Diagnostics(checks=checks, method="nuts")

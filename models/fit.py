@@ -1,0 +1,311 @@
+"""Counts to posterior: fit the full model or the quick mode, save and load fits.
+
+Only the counts table comes in; only the posterior (InferenceData) with its
+summary, diagnostics and flags goes out to the reports layer.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import json
+import os
+import shutil
+import tempfile
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import arviz as az
+import numpy as np
+import pandas as pd
+import xarray as xr
+
+from liftpool.data_prep.errors import InputError
+from liftpool.data_prep.io import write_json
+from liftpool.models.design import CampaignFlags, Design, make_design
+from liftpool.models.diagnostics import Diagnostics, check_convergence
+from liftpool.models.errors import FitError
+from liftpool.models.quick import quick_fit, quick_relative
+from liftpool.models.settings import ModelSettings, default_cores
+from liftpool.models.summary import NEW_CAMPAIGN, PORTFOLIO, summarize_draws
+
+__all__ = ["FitResult", "fit_counts", "load_fit", "package_versions"]
+
+
+def package_versions() -> dict[str, str]:
+    import importlib.metadata as md
+
+    out = {}
+    for p in ("liftpool", "pymc", "pytensor", "arviz", "numpy", "pandas", "xarray", "scipy", "duckdb"):
+        try:
+            out[p] = md.version(p)
+        except md.PackageNotFoundError:
+            out[p] = "not installed"
+    return out
+
+
+@dataclass
+class FitResult:
+    """A fitted model: posterior, tidy summary, convergence checks and data flags.
+
+    Attributes
+    ----------
+    idata : arviz.InferenceData
+    summary : DataFrame
+        ``campaign, quantity, mean, median, lower, upper, level``.
+    diagnostics : Diagnostics
+    flags : CampaignFlags
+    settings : ModelSettings
+    mode : {"full", "quick"}
+    info : dict
+        Timings, backend, package versions, counts size.
+    """
+
+    idata: az.InferenceData
+    summary: pd.DataFrame
+    diagnostics: Diagnostics
+    flags: CampaignFlags
+    settings: ModelSettings
+    mode: str
+    info: dict = field(default_factory=dict)
+
+    @property
+    def converged(self) -> bool:
+        return self.diagnostics.converged
+
+    @property
+    def corrected(self) -> bool:
+        return not self.flags.no_placebo_anywhere
+
+    def table(self, quantity: str = "lift") -> pd.DataFrame:
+        """The summary rows of one quantity, indexed by campaign."""
+        return self.summary[self.summary["quantity"] == quantity].set_index("campaign")
+
+    def save(self, folder: str | os.PathLike) -> Path:
+        """Write ``posterior.nc``, ``summary.csv`` and ``fit.json`` into a new folder, atomically.
+
+        The folder must not exist yet (a re-fit never overwrites an earlier fit).
+        """
+        folder = Path(folder)
+        if folder.exists() and any(folder.iterdir()):
+            raise InputError(problem="the folder already holds files; a fit is never written over another",
+                             file=str(folder), fix="choose a new --out folder")
+        folder.parent.mkdir(parents=True, exist_ok=True)
+        tmp = Path(tempfile.mkdtemp(prefix=f".{folder.name}.", suffix=".tmp", dir=folder.parent))
+        try:
+            self.idata.to_netcdf(str(tmp / "posterior.nc"), engine="h5netcdf")
+            self.summary.to_csv(tmp / "summary.csv", index=False)
+            write_json({"mode": self.mode, "settings": self.settings.to_dict(),
+                        "diagnostics": self.diagnostics.to_dict(), "flags": self.flags.to_dict(),
+                        "info": self.info}, tmp / "fit.json")
+            if folder.exists():
+                folder.rmdir()
+            os.rename(tmp, folder)
+        finally:
+            if tmp.exists():
+                shutil.rmtree(tmp, ignore_errors=True)
+        return folder
+
+    def render(self) -> str:
+        """Plain-text result for the terminal."""
+        s = self.summary
+        lines = []
+        if not self.converged and self.mode == "full":
+            lines.append("WARNING: the fit did NOT converge; do not use these numbers for decisions.")
+        q = "lift" if self.corrected else "lift_uncorrected"
+        t = s[s["quantity"] == q]
+        lvl = int(round(self.settings.level * 100))
+        lines.append(f"{'bias-corrected' if self.corrected else 'UNCORRECTED'} lift among seen users "
+                     f"(median and {lvl}% interval):")
+        for r in t.itertuples():
+            lines.append(f"  {r.campaign:<24s} {r.median:+8.1%}   [{r.lower:+8.1%}, {r.upper:+8.1%}]")
+        lines.append(self.diagnostics.render())
+        for m in self.flags.messages():
+            lines.append("note: " + m)
+        lines.append("This is an observational estimate, not a randomized test (see the report's cautions).")
+        return "\n".join(lines)
+
+    def _repr_html_(self) -> str:
+        from html import escape
+
+        t = self.summary
+        q = "lift" if self.corrected else "lift_uncorrected"
+        rows = "".join(
+            f"<tr><td>{escape(str(r.campaign))}</td><td>{r.median:+.1%}</td><td>{r.lower:+.1%} to {r.upper:+.1%}</td></tr>"
+            for r in t[t["quantity"] == q].itertuples())
+        status = "converged" if self.converged else "<b>NOT CONVERGED</b>"
+        return (f"<div><p>liftpool fit ({escape(self.mode)}; {status}; level {self.settings.level:.0%})</p>"
+                f"<table><tr><th>campaign</th><th>{escape(q)} (median)</th><th>interval</th></tr>{rows}</table>"
+                "<p>Observational estimate, not a randomized test.</p></div>")
+
+
+def load_fit(folder: str | os.PathLike) -> FitResult:
+    """Load a fit saved by :meth:`FitResult.save`."""
+    folder = Path(folder)
+    meta_path = folder / "fit.json"
+    if not meta_path.is_file():
+        raise InputError(problem="not a fit folder (no fit.json)", file=str(folder),
+                         fix="give the folder written by 'liftpool fit'")
+    meta = json.loads(meta_path.read_text())
+    idata = az.from_netcdf(str(folder / "posterior.nc"), engine="h5netcdf")
+    summary = pd.read_csv(folder / "summary.csv", keep_default_na=False, na_values=[""])
+    flags_d = {k: v for k, v in meta["flags"].items() if k != "messages"}
+    return FitResult(idata=idata, summary=summary, diagnostics=Diagnostics.from_dict(meta["diagnostics"]),
+                     flags=CampaignFlags(**flags_d), settings=ModelSettings.from_mapping(meta["settings"]),
+                     mode=meta["mode"], info=meta.get("info", {}))
+
+
+def _naive_draws(d: Design, n_draws: int, rng: np.random.Generator) -> dict[str, np.ndarray]:
+    """Exposed-versus-unexposed relative lift from Beta(1 + x, 1 + n - x) posteriors of each rate."""
+    out = {}
+    if d.unexposed.empty:
+        return out
+    c = d.counts
+    for camp in d.campaigns:
+        un = d.unexposed[(d.unexposed["campaign"] == camp) & (d.unexposed["role"] == "target")]
+        if un.empty:
+            continue
+        ex = c[(c["campaign"] == camp) & (c["role"] == "target") & c["arm"].isin(["seen", "unseen"])]
+        x, n = ex["conversions"].sum(), ex["users"].sum()
+        xu, nu = un["conversions"].sum(), un["users"].sum()
+        pe = rng.beta(1 + x, 1 + n - x, n_draws)
+        pu = rng.beta(1 + xu, 1 + nu - xu, n_draws)
+        out[camp] = pe / pu - 1
+    return out
+
+
+def _posterior_quantities(d: Design, post: xr.Dataset, corrected: bool) -> dict[str, dict[str, np.ndarray]]:
+    q: dict[str, dict[str, np.ndarray]] = {}
+    names = ["lift_uncorrected", "lift_logodds"] + (["lift", "incremental_conversions", "bias_target"]
+                                                    if corrected else [])
+    for name in names:
+        da = post[name]
+        key = "bias" if name == "bias_target" else name
+        q[key] = {c: da.sel(campaign=c).values.ravel() for c in d.campaigns}
+    return q
+
+
+def fit_counts(
+    counts: pd.DataFrame,
+    settings: ModelSettings | None = None,
+    quick: bool = False,
+    groups: dict[str, str] | None = None,
+    progress: Callable[[str], None] | None = None,
+    progressbar: bool = False,
+) -> FitResult:
+    """Fit the hierarchical lift model (or the quick mode) to a counts table.
+
+    Parameters
+    ----------
+    counts : DataFrame
+        ``campaign, cell, arm, outcome, role, users, conversions``.
+    settings : ModelSettings, optional
+    quick : bool
+        The quick mode (seconds, no sampler) instead of NUTS.
+    groups : dict, optional
+        Campaign to group (e.g. product line): a further level of pooling.
+    progress : callable, optional
+        Called with a short text before each step.
+    progressbar : bool
+        Show PyMC's sampling progress bar (on a terminal).
+
+    Returns
+    -------
+    FitResult
+    """
+    s = settings or ModelSettings()
+    say = progress or (lambda _m: None)
+    d = make_design(counts, groups=groups)
+    rng = np.random.default_rng(s.seed + 1)
+    corrected = not d.flags.no_placebo_anywhere
+    info = {"created": _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"), "versions": package_versions(),
+            "campaigns": d.n_campaigns, "rows": int(len(d.users)), "strata": int(len(d.stratum_pair)),
+            "pairs": int(len(d.pair_campaign))}
+    t0 = time.perf_counter()
+    if quick:
+        say("quick mode: stratified estimates and exact pooling")
+        r = quick_fit(d, s)
+        n = r.lift_logodds.shape[0]
+        lift, inc, cf = quick_relative(d, r.lift_logodds)
+        lift_unc, _, _ = quick_relative(d, r.lift_uncorrected_logodds)
+        coords = {"chain": [0], "draw": np.arange(n), "campaign": d.campaigns}
+        cd = ("chain", "draw", "campaign")
+        data = {"lift_logodds": (cd, r.lift_logodds[None]), "lift_uncorrected": (cd, lift_unc[None]),
+                "lift": (cd, lift[None]), "incremental_conversions": (cd, inc[None]),
+                "counterfactual_conversions": (cd, cf[None]), "bias_target": (cd, r.bias[None]),
+                "lift_mean": (("chain", "draw"), r.lift_mean[None]), "lift_sd": (("chain", "draw"), r.lift_sd[None])}
+        if r.bias_mean is not None:
+            data["bias_mean"] = (("chain", "draw"), r.bias_mean[:n][None])
+            data["bias_sd"] = (("chain", "draw"), r.bias_sd[:n][None])
+        post = xr.Dataset(data, coords=coords)
+        idata = az.InferenceData(posterior=post)
+        est = r.estimates
+        idata.add_groups({"constant_data": xr.Dataset(
+            {"estimate": ("pair", est["log_or"].to_numpy()), "std_error": ("pair", est["se"].to_numpy()),
+             "pair_campaign": ("pair", est["campaign"].to_numpy(str)),
+             "pair_outcome": ("pair", est["outcome"].to_numpy(str)),
+             "pair_role": ("pair", est["role"].to_numpy(str))})})
+        diag = Diagnostics(method="exact grid", note="quick mode: exact grid posterior with independent draws; "
+                           "no sampler, so R-hat, ESS and divergences do not apply")
+        new_lift = np.expm1(r.lift_new)
+        info["backend"] = "numpy"
+    else:
+        from liftpool.models.backend import configure_backend
+        from liftpool.models.hierarchical import LARGE_VARS, build_model
+
+        info["backend"] = configure_backend()
+        say(f"building the model: {d.n_campaigns} campaigns, {len(d.pair_campaign)} campaign-outcome pairs, "
+            f"{len(d.stratum_pair)} strata, {len(d.users)} count rows")
+        model = build_model(d, s)
+        import pymc as pm
+
+        say(f"sampling: {s.chains} chains x ({s.tune} tuning + {s.draws} draws), sampler {s.sampler}, "
+            f"seed {s.seed}")
+        try:
+            with model:
+                idata = pm.sample(draws=s.draws, tune=s.tune, chains=s.chains,
+                                  cores=min(s.chains, default_cores()), random_seed=s.seed,
+                                  target_accept=s.target_accept, nuts_sampler=s.sampler,
+                                  progressbar=progressbar, compute_convergence_checks=False)
+        except Exception as exc:  # noqa: BLE001 - surfaced as a FitError with the cause
+            raise FitError(f"sampling failed: {type(exc).__name__}: {exc}") from exc
+        info["sampling_seconds"] = round(time.perf_counter() - t0, 2)
+        say("checking convergence")
+        free = [v.name for v in model.free_RVs]
+        diag = check_convergence(idata, var_names=free + [v for v in ("lift", "lift_uncorrected", "bias_target",
+                                                                      "incremental_conversions")])
+        idata.posterior = idata.posterior.drop_vars([v for v in LARGE_VARS if v in idata.posterior])
+        post = idata.posterior
+        rng_new = np.random.default_rng(s.seed + 2)
+        ln = post["lift_mean"].values + post["lift_sd"].values * rng_new.standard_normal(post["lift_mean"].shape)
+        new_lift = np.expm1(ln).ravel()
+        extra = xr.Dataset(
+            {"pair_campaign": ("pair", np.array(d.campaigns)[d.pair_campaign].astype(str)),
+             "pair_outcome": ("pair", np.array(d.outcomes)[d.pair_outcome].astype(str)),
+             "pair_role": ("pair", np.where(d.pair_is_target, "target", "placebo").astype(str))},
+            coords={"pair": d.pair_labels()})
+        idata.constant_data = xr.merge([idata.constant_data, extra])
+    post = idata.posterior
+    per = _posterior_quantities(d, post, corrected)
+    n_draws = post.sizes["chain"] * post.sizes["draw"]
+    naive = _naive_draws(d, n_draws, rng)
+    if naive:
+        per["lift_naive"] = naive
+        arr = np.full((post.sizes["chain"], post.sizes["draw"], d.n_campaigns), np.nan)
+        for i, c in enumerate(d.campaigns):
+            if c in naive:
+                arr[:, :, i] = naive[c].reshape(post.sizes["chain"], post.sizes["draw"])
+        idata.posterior["lift_naive"] = (("chain", "draw", "campaign"), arr)
+    pooled: dict[str, dict[str, np.ndarray]] = {}
+    if corrected:
+        inc = post["incremental_conversions"].values.sum(axis=-1).ravel()
+        cf = post["counterfactual_conversions"].values.sum(axis=-1).ravel()
+        pooled[PORTFOLIO] = {"lift": inc / cf, "incremental_conversions": inc}
+        pooled[NEW_CAMPAIGN] = {"lift": new_lift}
+    summary = summarize_draws(per, pooled, s.level)
+    info["seconds"] = round(time.perf_counter() - t0, 2)
+    idata.posterior.attrs.update({"liftpool_mode": "quick" if quick else "full", "seed": s.seed,
+                                  "corrected": int(corrected)})
+    return FitResult(idata=idata, summary=summary, diagnostics=diag, flags=d.flags, settings=s,
+                     mode="quick" if quick else "full", info=info)
