@@ -7,6 +7,7 @@ Buerkner 2021, Bayesian Analysis 16(2)).
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import asdict, dataclass, field
 
 import arviz as az
@@ -92,9 +93,13 @@ def check_convergence(idata: az.InferenceData, var_names: list[str] | None = Non
     post = idata.posterior
     if var_names:
         post = post[[v for v in var_names if v in post]]
-    rhat = az.rhat(post, method="rank")
-    ess_b = az.ess(post, method="bulk")
-    ess_t = az.ess(post, method="tail")
+    # constant quantities (e.g. a bias fixed at zero) have no R-hat or ESS: leave them out
+    post = post[[v for v in post.data_vars if float(post[v].std()) > 0]]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        rhat = az.rhat(post, method="rank")
+        ess_b = az.ess(post, method="bulk")
+        ess_t = az.ess(post, method="tail")
     r_val, r_name = _worst(rhat, np.nanargmax)
     b_val, b_name = _worst(ess_b, np.nanargmin)
     t_val, t_name = _worst(ess_t, np.nanargmin)

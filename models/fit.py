@@ -78,9 +78,12 @@ class FitResult:
     def corrected(self) -> bool:
         return not self.flags.no_placebo_anywhere
 
-    def table(self, quantity: str = "lift") -> pd.DataFrame:
-        """The summary rows of one quantity, indexed by campaign."""
-        return self.summary[self.summary["quantity"] == quantity].set_index("campaign")
+    def table(self, quantity: str = "lift", pooled: bool = False) -> pd.DataFrame:
+        """The summary rows of one quantity, indexed by campaign (with the pooled rows if ``pooled``)."""
+        t = self.summary[self.summary["quantity"] == quantity]
+        if not pooled:
+            t = t[~t["campaign"].isin([PORTFOLIO, NEW_CAMPAIGN])]
+        return t.set_index("campaign")
 
     def save(self, folder: str | os.PathLike) -> Path:
         """Write ``posterior.nc``, ``summary.csv`` and ``fit.json`` into a new folder, atomically.
@@ -278,8 +281,11 @@ def fit_counts(
         idata.posterior = idata.posterior.drop_vars([v for v in LARGE_VARS if v in idata.posterior])
         post = idata.posterior
         rng_new = np.random.default_rng(s.seed + 2)
-        ln = post["lift_mean"].values + post["lift_sd"].values * rng_new.standard_normal(post["lift_mean"].shape)
-        new_lift = np.expm1(ln).ravel()
+        if "lift_mean" in post:
+            ln = post["lift_mean"].values + post["lift_sd"].values * rng_new.standard_normal(post["lift_mean"].shape)
+            new_lift = np.expm1(ln).ravel()
+        else:  # a single campaign: no population to predict from
+            new_lift = None
         extra = xr.Dataset(
             {"pair_campaign": ("pair", np.array(d.campaigns)[d.pair_campaign].astype(str)),
              "pair_outcome": ("pair", np.array(d.outcomes)[d.pair_outcome].astype(str)),
@@ -302,7 +308,8 @@ def fit_counts(
         inc = post["incremental_conversions"].values.sum(axis=-1).ravel()
         cf = post["counterfactual_conversions"].values.sum(axis=-1).ravel()
         pooled[PORTFOLIO] = {"lift": inc / cf, "incremental_conversions": inc}
-        pooled[NEW_CAMPAIGN] = {"lift": new_lift}
+        if new_lift is not None and d.n_campaigns > 1:
+            pooled[NEW_CAMPAIGN] = {"lift": new_lift}
     summary = summarize_draws(per, pooled, s.level)
     info["seconds"] = round(time.perf_counter() - t0, 2)
     idata.posterior.attrs.update({"liftpool_mode": "quick" if quick else "full", "seed": s.seed,

@@ -30,7 +30,29 @@ __all__ = ["build_model", "target_strata", "MAIN_VARS", "LARGE_VARS"]
 MAIN_VARS = ["lift_mean", "lift_sd", "bias_mean", "bias_sd", "residual_sd", "lift_logodds", "bias",
              "bias_target", "lift", "lift_uncorrected", "incremental_conversions"]
 #: Per-stratum variables dropped from the stored posterior (they are large and only needed in-graph).
-LARGE_VARS = ["baseline", "residual_z", "effect"]
+LARGE_VARS = ["baseline", "baseline_rich", "baseline_z", "residual_placebo_z", "residual_placebo_c", "effect"]
+#: A stratum with at least this many conversions has its baseline sampled centered.
+RICH_CONVERSIONS = 10
+
+
+def _mixed_normal(model: pm.Model, name: str, mu, sd, rich: np.ndarray, dim: str):
+    """Normal(mu, sd) over ``dim``: centered where ``rich`` (data pin the value), non-centered elsewhere.
+
+    ``mu`` is a scalar or a vector over ``dim``.  The combined vector is the Deterministic ``name``.
+    """
+    n = len(rich)
+    idx_r, idx_s = np.flatnonzero(rich), np.flatnonzero(~rich)
+    mu_v = mu if getattr(mu, "ndim", 0) else pt.ones(n) * mu
+    out = pt.zeros(n)
+    if idx_r.size:
+        model.add_coord(f"{dim}_{name}_c", idx_r)
+        c = pm.Normal(f"{name}_c", mu_v[idx_r], sd, dims=f"{dim}_{name}_c")
+        out = pt.set_subtensor(out[idx_r], c)
+    if idx_s.size:
+        model.add_coord(f"{dim}_{name}_z", idx_s)
+        z = pm.Normal(f"{name}_z", 0.0, 1.0, dims=f"{dim}_{name}_z")
+        out = pt.set_subtensor(out[idx_s], mu_v[idx_s] + sd * z)
+    return pm.Deterministic(name, out, dims=dim)
 
 
 def target_strata(d: Design) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -76,61 +98,95 @@ def build_model(d: Design, s: ModelSettings) -> pm.Model:
     if d.groups:
         coords["group"] = d.groups
     centered = s.parameterization == "centered"
+    bias_rich, lift_rich, resid_rich = np.full(C, centered), np.full(C, centered), np.full(P, centered)
     corrected = not d.flags.no_placebo_anywhere
     ts, t_camp, n_seen = target_strata(d)
     with pm.Model(coords=coords) as model:
         users = pm.Data("users", d.users, dims="row")
         seen = pm.Data("seen", d.row_seen, dims="row")
 
-        # Baselines are data-rich (every cell has users in both arms), so they are always centered:
-        # a non-centered form makes a ridge between the pair mean and the cell deviations.
+        # Baselines: each stratum's parameterization follows its own data.  A stratum with many
+        # conversions is sampled centered (a non-centered form makes a ridge between the pair mean
+        # and the cell deviation); a sparse one non-centered (a centered form makes a funnel with
+        # baseline_sd).  With no pair split into cells there is nothing to pool: no hierarchy.
         offset = _pair_offsets(d)
-        baseline_sd = pm.HalfNormal("baseline_sd", s.baseline_sd_scale)
-        base_pair = pm.Normal("base_pair", offset, 2.0, dims="pair")
-        baseline = pm.Normal("baseline", base_pair[d.stratum_pair], baseline_sd, dims="stratum")
-
-        lift_mean = pm.Normal("lift_mean", 0.0, s.lift_mean_scale)
-        lift_sd = pm.HalfNormal("lift_sd", s.lift_sd_scale)
-        center = lift_mean
-        if d.groups:
-            group_sd = pm.HalfNormal("group_sd", s.group_sd_scale)
-            gz = pm.Normal("group_z", 0.0, 1.0, dims="group")
-            g_eff = pm.Deterministic("group_effect", group_sd * gz, dims="group")
-            cg = np.where(d.campaign_group >= 0, d.campaign_group, 0)
-            center = lift_mean + pt.where(d.campaign_group >= 0, g_eff[cg], 0.0)
-        if centered:
-            lift = pm.Normal("lift_logodds", center, lift_sd, dims="campaign")
+        S = len(d.stratum_pair)
+        if np.bincount(d.stratum_pair).max() < 2:
+            baseline = pm.Normal("baseline", offset[d.stratum_pair], 2.0, dims="stratum")
         else:
-            lz = pm.Normal("lift_z", 0.0, 1.0, dims="campaign")
-            lift = pm.Deterministic("lift_logodds", center + lift_sd * lz, dims="campaign")
+            baseline_sd = pm.HalfNormal("baseline_sd", s.baseline_sd_scale)
+            base_pair = pm.Normal("base_pair", offset, 2.0, dims="pair")
+            x = np.bincount(d.row_stratum, weights=d.conversions, minlength=S)
+            rich = np.flatnonzero(x >= RICH_CONVERSIONS)
+            poor = np.flatnonzero(x < RICH_CONVERSIONS)
+            model.add_coord("stratum_rich", rich)
+            model.add_coord("stratum_sparse", poor)
+            b_rich = pm.Normal("baseline_rich", base_pair[d.stratum_pair[rich]], baseline_sd, dims="stratum_rich")
+            z = pm.Normal("baseline_z", 0.0, 1.0, dims="stratum_sparse")
+            b_poor = base_pair[d.stratum_pair[poor]] + baseline_sd * z
+            full = pt.zeros(S)
+            full = pt.set_subtensor(full[rich], b_rich)
+            full = pt.set_subtensor(full[poor], b_poor)
+            baseline = pm.Deterministic("baseline", full, dims="stratum")
 
-        if corrected:
-            if s.bias_sign == "nonnegative":
-                bias_mean = pm.HalfNormal("bias_mean", s.bias_mean_scale)
-                bias_sd = pm.HalfNormal("bias_sd", s.bias_sd_scale)
-                bias = pm.TruncatedNormal("bias", mu=bias_mean, sigma=bias_sd, lower=0.0, dims="campaign")
+        single = C == 1
+        if single:
+            # nothing to pool: the campaign's lift gets the prior of the pooled mean directly
+            center, lift_sd = 0.0, float(s.lift_mean_scale)
+        else:
+            lift_mean = pm.Normal("lift_mean", 0.0, s.lift_mean_scale)
+            lift_sd = pm.HalfNormal("lift_sd", s.lift_sd_scale)
+            center = lift_mean
+            if d.groups:
+                group_sd = pm.HalfNormal("group_sd", s.group_sd_scale)
+                gz = pm.Normal("group_z", 0.0, 1.0, dims="group")
+                g_eff = pm.Deterministic("group_effect", group_sd * gz, dims="group")
+                cg = np.where(d.campaign_group >= 0, d.campaign_group, 0)
+                center = lift_mean + pt.where(d.campaign_group >= 0, g_eff[cg], 0.0)
+
+        if not corrected:
+            lift = _mixed_normal(model, "lift_logodds", center, lift_sd, lift_rich, "campaign")
+            pair_bias = pt.zeros(P)
+        else:
+            if single:
+                bias = (pm.TruncatedNormal("bias", mu=0.0, sigma=s.bias_mean_scale, lower=0.0, dims="campaign")
+                        if s.bias_sign == "nonnegative" else
+                        pm.Normal("bias", 0.0, s.bias_mean_scale, dims="campaign"))
+                residual_sd = pm.HalfNormal("residual_sd", s.residual_sd_scale)
             else:
-                bias_mean = pm.Normal("bias_mean", 0.0, s.bias_mean_scale)
                 bias_sd = pm.HalfNormal("bias_sd", s.bias_sd_scale)
-                if centered:
-                    bias = pm.Normal("bias", bias_mean, bias_sd, dims="campaign")
+                residual_sd = pm.HalfNormal("residual_sd", s.residual_sd_scale)
+                if s.bias_sign == "nonnegative":
+                    bias_mean = pm.HalfNormal("bias_mean", s.bias_mean_scale)
+                    bias = pm.TruncatedNormal("bias", mu=bias_mean, sigma=bias_sd, lower=0.0, dims="campaign")
                 else:
-                    bz_c = pm.Normal("bias_z", 0.0, 1.0, dims="campaign")
-                    bias = pm.Deterministic("bias", bias_mean + bias_sd * bz_c, dims="campaign")
-            residual_sd = pm.HalfNormal("residual_sd", s.residual_sd_scale)
-            if centered:
-                residual = pm.Normal("residual", 0.0, residual_sd, dims="pair")
-            else:
-                rz = pm.Normal("residual_z", 0.0, 1.0, dims="pair")
-                residual = pm.Deterministic("residual", residual_sd * rz, dims="pair")
+                    bias_mean = pm.Normal("bias_mean", 0.0, s.bias_mean_scale)
+                    bias = _mixed_normal(model, "bias", bias_mean, bias_sd, bias_rich, "campaign")
+            # Placebo pairs carry their own residual.  On the target, the data see only the sum
+            # lift + residual, so that sum is sampled, ~ N(center, sqrt(lift_sd^2 + residual_sd^2)),
+            # and the lift is drawn from its exact conditional normal given the sum (a data-free
+            # standard normal): the same model, without the ridge between lift and residual.
+            pl = np.flatnonzero(~d.pair_is_target)
+            tpairs = np.flatnonzero(d.pair_is_target)
+            residual = pt.zeros(P)
+            if pl.size:
+                model.add_coord("placebo_pair", np.array(d.pair_labels())[pl])
+                r_pl = _mixed_normal(model, "residual_placebo", 0.0, residual_sd, resid_rich[pl], "placebo_pair")
+                residual = pt.set_subtensor(residual[pl], r_pl)
+            total_sd = pt.sqrt(lift_sd**2 + residual_sd**2)
+            excess = _mixed_normal(model, "target_excess", center, total_sd, lift_rich, "campaign")
+            k = lift_sd**2 / total_sd**2
+            split_z = pm.Normal("lift_split_z", 0.0, 1.0, dims="campaign")
+            lift = pm.Deterministic("lift_logodds", center + k * (excess - center) + pt.sqrt(k) * residual_sd * split_z,
+                                    dims="campaign")
+            residual = pt.set_subtensor(residual[tpairs], (excess - lift)[d.pair_campaign[tpairs]])
+            residual = pm.Deterministic("residual", residual, dims="pair")
             pair_bias = bias[d.pair_campaign] + residual
             if s.outcome_bias:
                 ob_sd = pm.HalfNormal("outcome_bias_sd", s.outcome_bias_sd_scale)
                 oz = pm.Normal("outcome_bias_z", 0.0, 1.0, dims="outcome")
                 ob = pm.Deterministic("outcome_bias", ob_sd * oz, dims="outcome")
                 pair_bias = pair_bias + ob[d.pair_outcome]
-        else:
-            pair_bias = pt.zeros(P)
         effect = pm.Deterministic("effect", pair_bias + d.pair_is_target * lift[d.pair_campaign], dims="pair")
         logit_p = baseline[d.row_stratum] + seen * effect[d.row_pair]
         pm.Binomial("conversions", n=users, logit_p=logit_p, observed=d.conversions, dims="row")

@@ -34,6 +34,8 @@ class ModelSettings:
     sampler : {"pymc", "nutpie", "numpyro"}
         NUTS implementation (passed to PyMC as ``nuts_sampler``).
     parameterization : {"noncentered", "centered"}
+        Of the campaign-level effects (bias, lift, residuals); baselines always follow
+        their own data (centered where a cell has many conversions).
     bias_sign : {"any", "nonnegative"}
         ``nonnegative`` constrains each campaign's bias to be >= 0 (seen users
         convert more for reasons other than the ad: the usual direction in this
@@ -53,10 +55,10 @@ class ModelSettings:
     """
 
     chains: int = 4
-    draws: int = 1000
+    draws: int = 2000
     tune: int = 1000
     seed: int = 20261201
-    target_accept: float = 0.9
+    target_accept: float = 0.99
     sampler: str = "pymc"
     parameterization: str = "noncentered"
     bias_sign: str = "any"

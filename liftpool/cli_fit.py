@@ -1,0 +1,90 @@
+"""``liftpool fit``: counts file to a fit folder (posterior.nc, summary.csv, fit.json)."""
+
+from __future__ import annotations
+
+import argparse
+from pathlib import Path
+
+__all__ = ["register", "settings_from_args", "model_args"]
+
+
+def model_args(p: argparse.ArgumentParser) -> None:
+    g = p.add_argument_group("model and sampler (defaults in docs/model.md)")
+    g.add_argument("--quick", action="store_true", help="quick mode: stratified estimates pooled exactly, seconds")
+    g.add_argument("--chains", type=int, help="NUTS chains (default 4)")
+    g.add_argument("--draws", type=int, help="kept draws per chain (default 2000)")
+    g.add_argument("--tune", type=int, help="tuning steps per chain (default 2000)")
+    g.add_argument("--seed", type=int, help="random seed (recorded with the fit)")
+    g.add_argument("--level", type=float, help="credible-interval level (default 0.9)")
+    g.add_argument("--sampler", choices=["pymc", "nutpie", "numpyro"], help="NUTS implementation (default pymc)")
+    g.add_argument("--target-accept", type=float, help="NUTS target acceptance (default 0.99)")
+    g.add_argument("--parameterization", choices=["noncentered", "centered"], help="of the campaign-level effects (default noncentered)")
+    g.add_argument("--bias-sign", choices=["any", "nonnegative"], help="constrain each campaign's bias to >= 0")
+    g.add_argument("--outcome-bias", action="store_true", help="add a bias effect per outcome shared by campaigns")
+    g.add_argument("--groups", help="CSV with campaign,group (e.g. product line): a further pooling level")
+    g.add_argument("--strict", action="store_true", help="exit with code 3 when the fit did not converge")
+
+
+def settings_from_args(args, base: dict | None = None):
+    from liftpool.models import ModelSettings
+
+    vals = dict(base or {})
+    for name in ("chains", "draws", "tune", "seed", "level", "sampler", "target_accept", "parameterization",
+                 "bias_sign"):
+        v = getattr(args, name, None)
+        if v is not None:
+            vals[name] = v
+    if getattr(args, "outcome_bias", False):
+        vals["outcome_bias"] = True
+    return ModelSettings.from_mapping(vals)
+
+
+def read_groups(path: str | None) -> dict[str, str] | None:
+    if not path:
+        return None
+    import pandas as pd
+
+    from liftpool.data_prep.errors import InputError
+
+    p = Path(path)
+    if not p.is_file():
+        raise InputError(problem="file not found", file=str(p), fix="check the path of the groups file")
+    df = pd.read_csv(p, dtype=str, keep_default_na=False)
+    for col in ("campaign", "group"):
+        if col not in df.columns:
+            raise InputError(problem=f"required column is missing (the file has: {', '.join(df.columns)})",
+                             file=str(p), column=col, fix="give a CSV with columns campaign,group")
+    return dict(zip(df["campaign"], df["group"], strict=True))
+
+
+def register(sub, common) -> None:
+    p = sub.add_parser("fit", help="counts to posterior: the hierarchical lift model",
+                       description="Fit the bias-corrected, partially pooled lift model to a counts file and write "
+                                   "DIR/posterior.nc, DIR/summary.csv and DIR/fit.json.")
+    p.add_argument("--counts", required=True, help="counts file (.parquet or .csv) from 'liftpool prepare'")
+    p.add_argument("--out", required=True, help="new folder for the fit (never written over)")
+    model_args(p)
+    common(p)
+    p.set_defaults(func=cmd_fit)
+
+
+def cmd_fit(args, console) -> int:
+    from liftpool.data_prep import read_counts
+    from liftpool.data_prep.errors import InputError
+    from liftpool.models import fit_counts
+
+    out = Path(args.out)
+    if out.exists() and any(out.iterdir()):
+        raise InputError(problem="the folder already holds files; a fit is never written over another",
+                         file=str(out), fix="choose a new --out folder")
+    counts = read_counts(args.counts)
+    settings = settings_from_args(args)
+    fit = fit_counts(counts, settings, quick=args.quick, groups=read_groups(args.groups), progress=console.step,
+                     progressbar=console.tty and not console.quiet)
+    fit.save(out)
+    console.out(fit.render())
+    console.out()
+    console.out(f"fit written to {out}")
+    if args.strict and not fit.converged and fit.mode == "full":
+        return 3
+    return 0

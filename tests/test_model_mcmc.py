@@ -1,0 +1,155 @@
+"""The full PyMC model: outside references, known truth, flags, storage.  Small models, fixed seeds."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import stats
+
+from liftpool.data_prep import CountingRules, prepare_counts, simulate
+from liftpool.models import ModelSettings, fit_counts, load_fit
+from liftpool.models.errors import InputError
+
+COLS = ["campaign", "cell", "arm", "outcome", "role", "users", "conversions"]
+FAST = ModelSettings(draws=500, tune=500, seed=5)
+
+
+def counts_of(rows):
+    return pd.DataFrame(rows, columns=COLS)
+
+
+@pytest.fixture(scope="module")
+def beta_fit():
+    rows = [("solo", "all", "seen", "buy", "target", 20_000, 500),
+            ("solo", "all", "unseen", "buy", "target", 20_000, 400)]
+    s = ModelSettings(draws=1000, tune=1000, seed=1, lift_mean_scale=10.0)
+    return fit_counts(counts_of(rows), s)
+
+
+def test_single_cell_matches_conjugate_beta(beta_fit):
+    # one campaign, one cell, no placebo, near-flat priors: the seen/unseen rate ratio matches the
+    # ratio of independent Beta(1 + x, 1 + n - x) posteriors (scipy.stats.beta), 200,000 Monte Carlo draws
+    rng = np.random.default_rng(0)
+    ref = (stats.beta(501, 19_501).rvs(200_000, random_state=rng)
+           / stats.beta(401, 19_601).rvs(200_000, random_state=rng) - 1)
+    got = beta_fit.idata.posterior["lift_uncorrected"].values.ravel()
+    np.testing.assert_allclose(np.quantile(got, [0.05, 0.5, 0.95]), np.quantile(ref, [0.05, 0.5, 0.95]),
+                               atol=0.015)
+    assert beta_fit.converged, beta_fit.diagnostics.render()
+
+
+def test_no_placebo_anywhere_refuses_corrected_lift(beta_fit):
+    q = set(beta_fit.summary["quantity"])
+    assert "lift_uncorrected" in q and "lift" not in q and "p_lift_positive" not in q
+    assert beta_fit.flags.no_placebo_anywhere and beta_fit.flags.single_campaign
+    msgs = " ".join(beta_fit.flags.messages())
+    assert "no bias-corrected lift" in msgs and "single campaign" in msgs.lower()
+
+
+@pytest.fixture(scope="module")
+def demo_fit():
+    data = simulate(seed=21, scale=0.6)
+    res = prepare_counts(data["impressions"], data["conversions"], data["outcomes"], users=data["users"],
+                         rules=CountingRules(unexposed=True))
+    fit = fit_counts(res.counts, ModelSettings(seed=21))
+    return fit, data["truth"].set_index("campaign")
+
+
+def test_full_model_converges_on_demo(demo_fit):
+    fit, _ = demo_fit
+    assert fit.converged, fit.diagnostics.render()
+
+
+def test_full_model_recovers_known_truth(demo_fit):
+    fit, truth = demo_fit
+    lift = fit.table("lift")
+    unc = fit.table("lift_uncorrected")
+    naive = fit.table("lift_naive")
+    t = truth.loc[lift.index, "true_lift"]
+    covered = (lift["lower"] <= t) & (t <= lift["upper"])
+    assert covered.mean() >= 0.8, pd.concat([lift[["lower", "median", "upper"]], t], axis=1)
+    # the uncorrected estimate is visibly biased and the naive one wildly so (known truth of the simulator)
+    assert (unc["median"] - t).mean() > 3 * (lift["median"] - t).abs().mean()
+    assert (naive["median"] > 3 * t.clip(lower=0.05)).all()
+    inc = fit.table("incremental_conversions")
+    tin = truth.loc[inc.index, "true_incremental_conversions"]
+    assert ((inc["lower"] <= tin) & (tin <= inc["upper"])).mean() >= 0.8
+
+
+def test_no_placebo_campaign_borrows_bias(demo_fit):
+    fit, _ = demo_fit
+    assert fit.flags.no_placebo == ["compost-kits"]
+    b = fit.table("bias")
+    # the borrowed bias sits inside the spread of the others
+    others = b.drop(index="compost-kits")["median"]
+    assert others.min() - 0.1 <= b.loc["compost-kits", "median"] <= others.max() + 0.1
+
+
+def test_summary_shape_and_pooled_rows(demo_fit):
+    fit, _ = demo_fit
+    s = fit.summary
+    assert list(s.columns) == ["campaign", "quantity", "mean", "median", "lower", "upper", "level"]
+    for q in ("lift", "lift_uncorrected", "lift_naive", "incremental_conversions", "bias", "p_lift_positive"):
+        assert (s.quantity == q).sum() >= 8, q
+    assert {"(portfolio)", "(new campaign)"} <= set(s.campaign)
+    assert (s.level == 0.9).all()
+    p = fit.table("p_lift_positive")["mean"]
+    post = fit.idata.posterior["lift"]
+    for c in p.index:  # recomputed independently from the draws
+        assert p[c] == pytest.approx(float((post.sel(campaign=c) > 0).mean()))
+
+
+def test_save_load_roundtrip_and_no_overwrite(demo_fit, tmp_path):
+    fit, _ = demo_fit
+    out = fit.save(tmp_path / "fit1")
+    assert sorted(p.name for p in out.iterdir()) == ["fit.json", "posterior.nc", "summary.csv"]
+    back = load_fit(out)
+    pd.testing.assert_frame_equal(back.summary, fit.summary)
+    assert list(back.idata.posterior["lift"].campaign.values) == list(fit.idata.posterior.campaign.values)
+    assert json.loads((out / "fit.json").read_text())["settings"]["seed"] == 21
+    before = (out / "posterior.nc").read_bytes()
+    with pytest.raises(InputError, match="never written over"):
+        fit.save(out)
+    assert (out / "posterior.nc").read_bytes() == before
+
+
+def test_zero_lift_intervals_include_zero():
+    data = simulate(seed=33, scale=0.5, zero_lift=True)
+    res = prepare_counts(data["impressions"], data["conversions"], data["outcomes"])
+    fit = fit_counts(res.counts, ModelSettings(seed=33))
+    lift = fit.table("lift")
+    assert ((lift["lower"] <= 0) & (0 <= lift["upper"])).mean() >= 0.8, lift
+
+
+def test_zero_conversion_arm_fits_and_is_flagged():
+    rows = []
+    for c, (xs, xu) in {"big": (300, 200), "tiny": (4, 0)}.items():
+        n = 10_000 if c == "big" else 120
+        rows += [(c, "all", "seen", "t_" + c, "target", n, xs), (c, "all", "unseen", "t_" + c, "target", n // 2, xu),
+                 (c, "all", "seen", "pl", "placebo", n, xs // 2 + 1), (c, "all", "unseen", "pl", "placebo", n // 2, xu // 3)]
+    fit = fit_counts(counts_of(rows), FAST)
+    assert fit.flags.zero_conversions_arm == ["tiny"]
+    assert np.isfinite(fit.table("lift").loc["tiny", ["lower", "upper"]]).all()
+
+
+def test_diagnostics_fail_loudly_on_a_starved_fit():
+    rows = [("a", "all", "seen", "t", "target", 1000, 30), ("a", "all", "unseen", "t", "target", 1000, 20),
+            ("a", "all", "seen", "p", "placebo", 1000, 25), ("a", "all", "unseen", "p", "placebo", 1000, 20)]
+    fit = fit_counts(counts_of(rows), ModelSettings(chains=1, draws=30, tune=30, seed=2))
+    assert not fit.converged
+    names = {c.name for c in fit.diagnostics.failures}
+    assert "R-hat (rank-normalized)" in names and "bulk ESS" in names
+    assert "at least 2 chains" in fit.diagnostics.render()
+    assert "NOT converge" in fit.render()
+
+
+def test_same_seed_same_result():
+    rows = [("a", "all", "seen", "t", "target", 1000, 30), ("a", "all", "unseen", "t", "target", 1000, 20),
+            ("a", "all", "seen", "p", "placebo", 1000, 25), ("a", "all", "unseen", "p", "placebo", 1000, 20),
+            ("b", "all", "seen", "t2", "target", 800, 20), ("b", "all", "unseen", "t2", "target", 900, 15)]
+    s = ModelSettings(draws=100, tune=100, seed=9)
+    a, b = fit_counts(counts_of(rows), s), fit_counts(counts_of(rows), s)
+    pd.testing.assert_frame_equal(a.summary, b.summary)
