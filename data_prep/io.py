@@ -16,7 +16,7 @@ from pathlib import Path
 
 import pandas as pd
 
-__all__ = ["atomic_path", "write_table", "write_json", "write_text", "read_table"]
+__all__ = ["atomic_path", "write_table", "write_json", "write_text", "read_table", "file_sha256"]
 
 
 @contextlib.contextmanager
@@ -80,3 +80,14 @@ def _json_default(o):
     if isinstance(o, Path):
         return str(o)
     raise TypeError(f"not JSON serializable: {type(o)}")
+
+
+def file_sha256(path: str | os.PathLike) -> str:
+    """SHA-256 of a file, read in 1 MiB blocks."""
+    import hashlib
+
+    h = hashlib.sha256()
+    with open(path, "rb") as f:
+        for block in iter(lambda: f.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()

@@ -101,12 +101,11 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def _register_later(sub) -> None:
-    """Commands of the model and report layers, added when those layers are present."""
-    try:
-        from liftpool import cli_fit
-    except ImportError:  # pragma: no cover - layer missing
-        return
+    """Commands of the model and report layers."""
+    from liftpool import cli_fit, cli_report
+
     cli_fit.register(sub, _common)
+    cli_report.register(sub, _common)
 
 
 def _cmd_prepare(args, console: Console) -> int:
@@ -120,6 +119,7 @@ def _cmd_prepare(args, console: Console) -> int:
     rules = CountingRules(**_rules_from_args(args))
     res = prepare_counts(args.impressions, args.conversions, args.outcomes, users=args.users, spend=args.spend,
                          rules=rules, engine=args.engine, progress=console.step)
+    res.summary.totals["input_sha256"] = input_hashes(args)
     write_table(res.counts, out)
     summary_path = out.with_name(out.name.split(".")[0] + ".summary.json")
     write_json(res.summary.to_dict(), summary_path)
@@ -128,6 +128,13 @@ def _cmd_prepare(args, console: Console) -> int:
     console.out(f"counts: {out} ({len(res.counts):,} rows)")
     console.out(f"summary: {summary_path}")
     return EXIT_OK
+
+
+def input_hashes(args) -> dict:
+    from liftpool.data_prep.io import file_sha256
+
+    return {k: file_sha256(getattr(args, k)) for k in ("impressions", "conversions", "outcomes", "users", "spend")
+            if getattr(args, k, None)}
 
 
 def _cmd_simulate(args, console: Console) -> int:

@@ -22,13 +22,14 @@ def run_demo(folder: Path, seed: int = 20261201, console: Console | None = None)
     rules = CountingRules(unexposed=True)
     res = prepare_counts(paths["impressions"], paths["conversions"], paths["outcomes"], users=paths["users"],
                          spend=paths["spend"], rules=rules, progress=console.step)
+    from liftpool.data_prep.io import file_sha256
+
+    res.summary.totals["input_sha256"] = {k: file_sha256(p) for k, p in paths.items() if k != "truth"}
     counts_path = write_table(res.counts, folder / "counts.parquet")
     write_json(res.summary.to_dict(), folder / "counts.summary.json")
     console.out(res.summary.render())
     console.out()
     console.out(f"counts: {counts_path}")
-    try:
-        from liftpool import pipeline
-    except ImportError:
-        return 0
+    from liftpool import pipeline
+
     return pipeline.demo_after_prepare(folder, res, paths, console, seed=seed)

@@ -96,6 +96,7 @@ class FitResult:
                              file=str(folder), fix="choose a new --out folder")
         folder.parent.mkdir(parents=True, exist_ok=True)
         tmp = Path(tempfile.mkdtemp(prefix=f".{folder.name}.", suffix=".tmp", dir=folder.parent))
+        os.chmod(tmp, 0o777 & ~_umask())
         try:
             self.idata.to_netcdf(str(tmp / "posterior.nc"), engine="h5netcdf")
             self.summary.to_csv(tmp / "summary.csv", index=False)
@@ -157,6 +158,45 @@ def load_fit(folder: str | os.PathLike) -> FitResult:
     return FitResult(idata=idata, summary=summary, diagnostics=Diagnostics.from_dict(meta["diagnostics"]),
                      flags=CampaignFlags(**flags_d), settings=ModelSettings.from_mapping(meta["settings"]),
                      mode=meta["mode"], info=meta.get("info", {}))
+
+
+def counts_hash(counts: pd.DataFrame) -> str:
+    """SHA-256 of the counts table in its canonical order (identifies the data a fit used)."""
+    import hashlib
+
+    text = counts.sort_values(["campaign", "cell", "arm", "outcome"]).to_csv(index=False)
+    return hashlib.sha256(text.encode()).hexdigest()
+
+
+def _add_data(idata: az.InferenceData, d: Design) -> None:
+    """Data the reports need, stored with the posterior: per campaign and per (campaign, outcome) pair."""
+    from liftpool.models.quick import stratified_estimates
+
+    c = d.counts
+    ex = c[c["arm"].isin(["seen", "unseen"])]
+    cells = ex.drop_duplicates(["campaign", "cell", "arm", "outcome"])
+    tgt = cells[cells["role"] == "target"]
+    users = tgt.pivot_table(index="campaign", columns="arm", values="users", aggfunc="sum").reindex(d.campaigns)
+    conv = tgt.pivot_table(index="campaign", columns="arm", values="conversions", aggfunc="sum").reindex(d.campaigns)
+    est = stratified_estimates(c).set_index(["campaign", "outcome"])
+    labels = d.pair_labels()
+    pc = np.array(d.campaigns)[d.pair_campaign]
+    po = np.array(d.outcomes)[d.pair_outcome]
+    e = est.loc[list(zip(pc, po, strict=True))]
+    ds = xr.Dataset(
+        {"users_seen": ("campaign", users["seen"].fillna(0).to_numpy(np.int64)),
+         "users_unseen": ("campaign", users["unseen"].fillna(0).to_numpy(np.int64)),
+         "target_conversions_seen": ("campaign", conv["seen"].fillna(0).to_numpy(np.int64)),
+         "target_conversions_unseen": ("campaign", conv["unseen"].fillna(0).to_numpy(np.int64)),
+         "pair_campaign": ("pair", pc.astype(str)), "pair_outcome": ("pair", po.astype(str)),
+         "pair_role": ("pair", np.where(d.pair_is_target, "target", "placebo").astype(str)),
+         "pair_estimate": ("pair", e["log_or"].to_numpy(float)),
+         "pair_std_error": ("pair", e["se"].to_numpy(float))},
+        coords={"campaign": d.campaigns, "pair": labels})
+    if "constant_data" in idata.groups():
+        idata.constant_data = xr.merge([idata.constant_data, ds])
+    else:
+        idata.add_groups({"constant_data": ds})
 
 
 def _naive_draws(d: Design, n_draws: int, rng: np.random.Generator) -> dict[str, np.ndarray]:
@@ -243,12 +283,6 @@ def fit_counts(
             data["bias_sd"] = (("chain", "draw"), r.bias_sd[:n][None])
         post = xr.Dataset(data, coords=coords)
         idata = az.InferenceData(posterior=post)
-        est = r.estimates
-        idata.add_groups({"constant_data": xr.Dataset(
-            {"estimate": ("pair", est["log_or"].to_numpy()), "std_error": ("pair", est["se"].to_numpy()),
-             "pair_campaign": ("pair", est["campaign"].to_numpy(str)),
-             "pair_outcome": ("pair", est["outcome"].to_numpy(str)),
-             "pair_role": ("pair", est["role"].to_numpy(str))})})
         diag = Diagnostics(method="exact grid", note="quick mode: exact grid posterior with independent draws; "
                            "no sampler, so R-hat, ESS and divergences do not apply")
         new_lift = np.expm1(r.lift_new)
@@ -286,12 +320,8 @@ def fit_counts(
             new_lift = np.expm1(ln).ravel()
         else:  # a single campaign: no population to predict from
             new_lift = None
-        extra = xr.Dataset(
-            {"pair_campaign": ("pair", np.array(d.campaigns)[d.pair_campaign].astype(str)),
-             "pair_outcome": ("pair", np.array(d.outcomes)[d.pair_outcome].astype(str)),
-             "pair_role": ("pair", np.where(d.pair_is_target, "target", "placebo").astype(str))},
-            coords={"pair": d.pair_labels()})
-        idata.constant_data = xr.merge([idata.constant_data, extra])
+    _add_data(idata, d)
+    info["counts_sha256"] = counts_hash(d.counts)
     post = idata.posterior
     per = _posterior_quantities(d, post, corrected)
     n_draws = post.sizes["chain"] * post.sizes["draw"]
@@ -316,3 +346,9 @@ def fit_counts(
                                   "corrected": int(corrected)})
     return FitResult(idata=idata, summary=summary, diagnostics=diag, flags=d.flags, settings=s,
                      mode="quick" if quick else "full", info=info)
+
+
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask

@@ -30,7 +30,7 @@ __all__ = ["build_model", "target_strata", "MAIN_VARS", "LARGE_VARS"]
 MAIN_VARS = ["lift_mean", "lift_sd", "bias_mean", "bias_sd", "residual_sd", "lift_logodds", "bias",
              "bias_target", "lift", "lift_uncorrected", "incremental_conversions"]
 #: Per-stratum variables dropped from the stored posterior (they are large and only needed in-graph).
-LARGE_VARS = ["baseline", "baseline_rich", "baseline_z", "residual_placebo_z", "residual_placebo_c", "effect"]
+LARGE_VARS = ["baseline", "baseline_rich", "baseline_z", "residual_placebo_z", "residual_placebo_c"]
 #: A stratum with at least this many conversions has its baseline sampled centered.
 RICH_CONVERSIONS = 10
 

@@ -21,7 +21,7 @@ def test_version():
     assert r.returncode == 0 and r.stdout.strip() == f"liftpool {__version__}"
 
 
-@pytest.mark.parametrize("command", ["prepare", "simulate", "demo"])
+@pytest.mark.parametrize("command", ["prepare", "simulate", "demo", "fit"])
 def test_help_on_every_command(command):
     r = run(command, "--help")
     assert r.returncode == 0 and "usage: liftpool " + command in r.stdout
@@ -65,3 +65,41 @@ def test_bad_option_value_lists_choices():
     r = run("prepare", "--impressions", "a.csv", "--conversions", "b.csv", "--outcomes", "c.csv", "--out", "x.csv",
             "--small-cells", "squash")
     assert r.returncode == 2 and "choose from 'merge', 'drop'" in r.stderr
+
+
+def test_fit_quick_from_counts_file(tmp_path):
+    data = tmp_path / "d"
+    assert run("simulate", "--out", data, "--scale", "0.05", "--seed", "3", "-q").returncode == 0
+    counts = tmp_path / "counts.parquet"
+    r = run("prepare", "--impressions", data / "impressions.parquet", "--conversions", data / "conversions.parquet",
+            "--outcomes", data / "outcomes.csv", "--out", counts, "-q")
+    assert r.returncode == 0, r.stderr
+    out = tmp_path / "fit"
+    r = run("fit", "--counts", counts, "--out", out, "--quick", "--level", "0.8", "--seed", "4")
+    assert r.returncode == 0, r.stderr
+    assert "bias-corrected lift" in r.stdout and "observational estimate" in r.stdout
+    s = pd.read_csv(out / "summary.csv")
+    assert (s.level == 0.8).all() and {"lift", "bias", "p_lift_positive"} <= set(s.quantity)
+    assert json.loads((out / "fit.json").read_text())["settings"]["seed"] == 4
+    again = run("fit", "--counts", counts, "--out", out, "--quick")
+    assert again.returncode == 2 and "never written over" in again.stderr
+
+
+def test_fit_strict_exit_3_when_not_converged(tmp_path):
+    counts = tmp_path / "c.csv"
+    pd.DataFrame({"campaign": ["a"] * 4, "cell": ["all"] * 4, "arm": ["seen", "seen", "unseen", "unseen"],
+                  "outcome": ["t", "p"] * 2, "role": ["target", "placebo"] * 2, "users": [1000] * 4,
+                  "conversions": [30, 25, 20, 20]}).to_csv(counts, index=False)
+    r = run("fit", "--counts", counts, "--out", tmp_path / "f", "--chains", "1", "--draws", "30", "--tune", "30",
+            "--strict", "-q")
+    assert r.returncode == 3, r.stderr
+    assert "NOT CONVERGED" in r.stdout
+
+
+def test_fit_bad_counts_exit_2(tmp_path):
+    counts = tmp_path / "c.csv"
+    pd.DataFrame({"campaign": ["a"], "cell": ["all"], "arm": ["seen"], "outcome": ["t"], "role": ["target"],
+                  "users": [10], "conversions": [11]}).to_csv(counts, index=False)
+    r = run("fit", "--counts", counts, "--out", tmp_path / "f")
+    assert r.returncode == 2 and "more conversions than users" in r.stderr and "Traceback" not in r.stderr
+    assert not (tmp_path / "f").exists()

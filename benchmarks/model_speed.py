@@ -1,0 +1,168 @@
+"""Model benchmarks (results in docs/performance.md).
+
+1. counts: the Binomial counts model against the same model on per-user Bernoulli rows
+   (1 million users): same posterior (the log densities differ by a constant and the
+   gradients agree), and the ratio of time per gradient evaluation and per draw.
+2. samplers: ESS per second of lift_mean and bias_sd for each NUTS implementation
+   installed (pymc, nutpie), compile versus sampling time.
+3. scale: 200 campaigns x 24 cells x 6 outcomes; time, peak memory, divergences.
+
+Usage: python benchmarks/model_speed.py [counts] [samplers] [scale]
+"""
+
+from __future__ import annotations
+
+import resource
+import sys
+import time
+
+import arviz as az
+import numpy as np
+import pandas as pd
+
+from liftpool.models import ModelSettings, fit_counts, make_design
+from liftpool.models.backend import configure_backend
+from liftpool.models.hierarchical import build_model
+
+COLS = ["campaign", "cell", "arm", "outcome", "role", "users", "conversions"]
+
+
+def synthetic_counts(n_campaigns, n_cells, n_outcomes, users_per_cell, seed=0) -> pd.DataFrame:
+    """Counts drawn from the model's own generative story (invented data, for measurement only)."""
+    rng = np.random.default_rng(seed)
+    bias = rng.normal(0.3, 0.1, n_campaigns)
+    lift = rng.normal(0.2, 0.1, n_campaigns)
+    rows = []
+    for c in range(n_campaigns):
+        for o in range(n_outcomes):
+            role = "target" if o == 0 else "placebo"
+            eff = bias[c] + rng.normal(0, 0.05) + (lift[c] if o == 0 else 0.0)
+            base = rng.normal(-3.5, 0.3)
+            for k in range(n_cells):
+                b = base + rng.normal(0, 0.3)
+                n_s, n_u = rng.poisson(users_per_cell * 0.7) + 1, rng.poisson(users_per_cell * 0.3) + 1
+                x_s = rng.binomial(n_s, 1 / (1 + np.exp(-(b + eff))))
+                x_u = rng.binomial(n_u, 1 / (1 + np.exp(-b)))
+                rows += [(f"c{c:03d}", f"k{k:02d}", "seen", f"o{c:03d}_{o}", role, n_s, x_s),
+                         (f"c{c:03d}", f"k{k:02d}", "unseen", f"o{c:03d}_{o}", role, n_u, x_u)]
+    return pd.DataFrame(rows, columns=COLS)
+
+
+def expand_to_users(counts: pd.DataFrame) -> pd.DataFrame:
+    """One row per user and outcome with users=1 and conversions 0/1: Binomial(1) is Bernoulli."""
+    rep = counts.loc[counts.index.repeat(counts["users"])].copy()
+    rank = rep.groupby(level=0).cumcount().to_numpy()
+    rep["conversions"] = (rank < rep["conversions"].to_numpy()).astype(int)
+    rep["users"] = 1
+    rep["cell"] = rep["cell"] + "#" + rank.astype(str)  # each user its own row key
+    return rep.reset_index(drop=True)
+
+
+def bench_counts() -> None:
+    configure_backend()
+    counts = synthetic_counts(4, 6, 2, users_per_cell=42_000, seed=1)
+    n_users = int(counts[counts.outcome.str.endswith("_0")]["users"].sum())
+    d_counts = make_design(counts)
+    # per-user design: the same strata (campaign, outcome, cell) with one likelihood row per user
+    per_user = d_counts.__class__(**{**d_counts.__dict__})
+    reps = d_counts.users
+    per_user.row_stratum = np.repeat(d_counts.row_stratum, reps)
+    per_user.row_seen = np.repeat(d_counts.row_seen, reps)
+    per_user.conversions = np.concatenate([(np.arange(n) < x).astype(np.int64)
+                                           for n, x in zip(reps, d_counts.conversions, strict=True)])
+    per_user.users = np.ones_like(per_user.conversions)
+    s = ModelSettings(seed=1)
+    m_c, m_u = build_model(d_counts, s), build_model(per_user, s)
+    f_c = m_c.compile_logp(jacobian=True)
+    f_u = m_u.compile_logp(jacobian=True)
+    g_c, g_u = m_c.compile_dlogp(), m_u.compile_dlogp()
+    rng = np.random.default_rng(0)
+    ip = m_c.initial_point()
+    diffs, gerr = [], []
+    for _ in range(5):
+        pt_ = {k: v + rng.normal(0, 0.1, np.shape(v)) for k, v in ip.items()}
+        diffs.append(f_c(pt_) - f_u(pt_))
+        gerr.append(np.max(np.abs(g_c(pt_) - g_u(pt_))))
+    print(f"counts vs per-user rows: {len(d_counts.users):,} count rows vs {len(per_user.users):,} user rows "
+          f"({n_users:,} users)")
+    print(f"  log density difference at 5 random points (a constant = the log binomial coefficients): "
+          f"spread {np.ptp(diffs):.2e}; max gradient difference {max(gerr):.2e}")
+
+    def per_eval(fn, n):
+        t = time.perf_counter()
+        for _ in range(n):
+            fn(ip)
+        return (time.perf_counter() - t) / n
+
+    tc, tu = per_eval(g_c, 2000), per_eval(g_u, 20)
+    print(f"  gradient evaluation: counts {tc * 1e6:,.0f} us, per-user {tu * 1e3:,.1f} ms: ratio {tu / tc:,.0f}x")
+    import pymc as pm
+
+    # Wall time of a real sampler run with the same work per draw for both: plain HMC with a fixed
+    # step size and path length (NUTS would choose different trees for the two).
+    times = {}
+    for name, model in (("counts", m_c), ("per-user", m_u)):
+        with model:
+            step = pm.HamiltonianMC(step_scale=0.05, path_length=0.8, adapt_step_size=False)
+            t = time.perf_counter()
+            pm.sample(draws=20, tune=0, chains=1, cores=1, step=step, random_seed=3, progressbar=False,
+                      compute_convergence_checks=False)
+        times[name] = time.perf_counter() - t
+    print(f"  20 HMC draws (same step size and path length), 1 chain: counts {times['counts']:.2f} s, "
+          f"per-user {times['per-user']:.1f} s: ratio {times['per-user'] / times['counts']:.0f}x")
+
+
+def bench_samplers() -> None:
+    from liftpool.data_prep import CountingRules, prepare_counts, simulate
+
+    data = simulate(seed=20261201)
+    counts = prepare_counts(data["impressions"], data["conversions"], data["outcomes"], users=data["users"],
+                            rules=CountingRules()).counts
+    samplers = ["pymc"]
+    try:
+        import nutpie  # noqa: F401
+
+        samplers.append("nutpie")
+    except ImportError:
+        print("nutpie not installed (pip install nutpie): skipped")
+    try:
+        import numpyro  # noqa: F401
+
+        samplers.append("numpyro")
+    except ImportError:
+        print("numpyro not installed (needs jax): skipped")
+    base = None
+    for smp in samplers:
+        t = time.perf_counter()
+        f = fit_counts(counts, ModelSettings(sampler=smp))
+        total = time.perf_counter() - t
+        samp = f.info["sampling_seconds"]
+        post = f.idata.posterior
+        ess = az.ess(post[["lift_mean", "bias_sd"]], method="bulk")
+        e_l, e_b = float(ess["lift_mean"]), float(ess["bias_sd"])
+        line = (f"{smp:8s} total {total:6.1f} s (sampling incl. compile {samp:6.1f} s)  ESS/s lift_mean "
+                f"{e_l / total:6.1f}  bias_sd {e_b / total:6.1f}  divergences "
+                f"{int(f.idata.sample_stats.diverging.sum())}  converged {f.converged}")
+        if base is None:
+            base = e_b / total
+        else:
+            line += f"  (bias_sd ESS/s ratio to pymc {e_b / total / base:.2f})"
+        print(line, flush=True)
+
+
+def bench_scale() -> None:
+    counts = synthetic_counts(200, 24, 6, users_per_cell=400, seed=2)
+    t = time.perf_counter()
+    f = fit_counts(counts, ModelSettings(draws=1000, tune=1000))
+    secs = time.perf_counter() - t
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    print(f"scale: {len(counts):,} count rows (200 campaigns x 24 cells x 6 outcomes x 2 arms): {secs / 60:.1f} min, "
+          f"peak {peak:,.0f} MB (parent process; chains run in worker processes)")
+    print(f.diagnostics.render())
+
+
+if __name__ == "__main__":
+    which = sys.argv[1:] or ["counts", "samplers", "scale"]
+    for w in which:
+        {"counts": bench_counts, "samplers": bench_samplers, "scale": bench_scale}[w]()
+        sys.stdout.flush()

@@ -1,0 +1,216 @@
+"""The self-contained HTML report: inline CSS, images embedded, no scripts, no external fetches.
+
+Every user-provided string (campaign, outcome, cell and file names) goes through ``esc``.
+"""
+
+from __future__ import annotations
+
+import base64
+from html import escape
+
+import numpy as np
+import pandas as pd
+
+from liftpool.reports.money import fmt_int, fmt_money, fmt_pct, fmt_prob, fmt_ratio
+from liftpool.reports.tables import ReportTables
+
+__all__ = ["render_html", "CAUTIONS"]
+
+CSS = """
+@page { size: auto; margin: 14mm 12mm; }
+* { box-sizing: border-box; }
+body { font-family: "DejaVu Sans", "Helvetica Neue", Arial, sans-serif; color: #111; background: #fff;
+       max-width: 186mm; margin: 0 auto; padding: 8mm 0; font-size: 10pt; line-height: 1.4; }
+h1 { font-size: 17pt; margin: 0 0 2mm; } h2 { font-size: 13pt; margin: 7mm 0 2mm; border-bottom: 1.5px solid #111;
+     page-break-after: avoid; } h3 { font-size: 11pt; margin: 4mm 0 1mm; page-break-after: avoid; }
+.sub { color: #444; margin: 0 0 4mm; }
+.status { border: 1.5px solid #111; padding: 2.5mm 3.5mm; margin: 3mm 0; }
+.status.bad { border: 3px double #111; background: #e6e6e6; font-weight: bold; }
+.status.warn { border-style: dashed; }
+.caution { border-left: 4px solid #111; padding: 1mm 3mm; margin: 3mm 0; background: #f2f2f2; }
+table { border-collapse: collapse; width: 100%; font-size: 8.2pt; margin: 2mm 0 3mm; }
+th, td { padding: 1.2mm 1.6mm; border-bottom: 0.6px solid #999; text-align: right; vertical-align: top; }
+th { border-bottom: 1.5px solid #111; font-weight: bold; background: #f2f2f2; }
+td.l, th.l { text-align: left; } tr { page-break-inside: avoid; } thead { display: table-header-group; }
+.fig { margin: 3mm 0 5mm; page-break-inside: avoid; } .fig img { max-width: 100%; height: auto; }
+.fig .cap { font-size: 8.5pt; color: #333; }
+p.camp { margin: 1.5mm 0; } .muted { color: #555; font-size: 8.5pt; }
+code { font-family: "DejaVu Sans Mono", monospace; font-size: 8pt; word-break: break-all; }
+"""
+
+CAUTIONS = [
+    "<b>This is an observational estimate, not a randomized test.</b> No one was held out at random; the "
+    "estimate compares users who saw an ad with users who were served the same campaign but never saw it.",
+    "It relies on the <b>placebo outcomes sharing the target's biases</b>: conversions the ads cannot cause, "
+    "affected by the same browsing habits and targeting. The model learns how much the bias varies from outcome to "
+    "outcome and widens every interval by it, but a bias the placebos do not share is not corrected.",
+    "Within each cell (impression frequency, viewability history, chosen covariates) whether a served ad was viewable "
+    "is treated as close to random. <b>Residual bias may remain</b>, for example from intent for the specific product, "
+    "cross-device users or cookie churn; unmeasured viewable impressions push some treated users into the unseen "
+    "group and understate the lift.",
+    "The lift applies to users who saw the ads, within the attribution window; it is not a forecast for more "
+    "impressions to new audiences.",
+    "<b>Use randomized tests where they are affordable</b>, and treat these intervals as the best available "
+    "evidence, not as proof.",
+]
+
+
+def esc(x) -> str:
+    return escape(str(x), quote=True)
+
+
+def _img(name: str, png: bytes, caption: str) -> str:
+    b64 = base64.b64encode(png).decode("ascii")
+    return (f'<div class="fig"><img alt="{esc(caption)}" src="data:image/png;base64,{b64}">'
+            f'<div class="cap">{esc(caption)}</div></div>')
+
+
+def _iv(lo, hi, f) -> str:
+    return f"{f(lo)} to {f(hi)}"
+
+
+def _lift_table(t: ReportTables) -> str:
+    L = int(round(t.level * 100))
+    c = t.campaigns
+    corrected = "lift, median (%)" in c.columns
+    head = ["campaign", "users seen", "users unseen", "non-viewable share", "naive lift", "uncorrected lift"]
+    if corrected:
+        head += ["bias-corrected lift (median)", "50% interval", f"{L}% interval", "incremental conversions",
+                 f"{L}% interval", "P(lift > 0)"]
+    else:
+        head += [f"{L}% interval"]
+    rows = []
+    for r in c.to_dict(orient="records"):
+        nv = r["non-viewable share of measured impressions (%)"]
+        cells = [f'<td class="l">{esc(r["campaign"])}</td>', f"<td>{fmt_int(r['users seen'])}</td>",
+                 f"<td>{fmt_int(r['users unseen'])}</td>",
+                 f"<td>{fmt_pct(nv / 100, signed=False) if np.isfinite(nv) else 'n/a'}</td>",
+                 f"<td>{fmt_pct(r['naive lift, median (%)'] / 100) if np.isfinite(r['naive lift, median (%)']) else 'n/a'}</td>",
+                 f"<td>{fmt_pct(r['uncorrected lift, median (%)'] / 100)}</td>"]
+        if corrected:
+            p = lambda k: r[k] / 100  # noqa: E731
+            cells += [f"<td><b>{fmt_pct(p('lift, median (%)'))}</b></td>",
+                      f"<td>{_iv(p('lift, 50% lower (%)'), p('lift, 50% upper (%)'), fmt_pct)}</td>",
+                      f"<td>{_iv(p(f'lift, {L}% lower (%)'), p(f'lift, {L}% upper (%)'), fmt_pct)}</td>",
+                      f"<td>{fmt_int(r['incremental conversions, median'])}</td>",
+                      f"<td>{_iv(r[f'incremental conversions, {L}% lower'], r[f'incremental conversions, {L}% upper'], fmt_int)}</td>",
+                      f"<td>{fmt_prob(r['P(lift > 0)'])}</td>"]
+        else:
+            cells += [f"<td>{_iv(r[f'uncorrected lift, {L}% lower (%)'] / 100, r[f'uncorrected lift, {L}% upper (%)'] / 100, fmt_pct)}</td>"]
+        rows.append("<tr>" + "".join(cells) + "</tr>")
+    th = "".join(f'<th class="l">{esc(h)}</th>' if i == 0 else f"<th>{esc(h)}</th>" for i, h in enumerate(head))
+    return f"<table><thead><tr>{th}</tr></thead><tbody>{''.join(rows)}</tbody></table>"
+
+
+def _money_table(t: ReportTables) -> str:
+    L = int(round(t.level * 100))
+    cur = t.currency
+    c = t.campaigns
+    if f"spend ({cur})" not in c.columns:
+        return '<p class="muted">No spend file was given: costs and returns are not shown.</p>'
+    has_value = "return on ad spend, median (x)" in c.columns
+    head = ["campaign", f"spend ({cur})", f"cost per incremental conversion ({cur})", f"{L}% interval"]
+    if has_value:
+        head += [f"incremental revenue ({cur})", f"{L}% interval", "return on ad spend", f"{L}% interval", "P(return > 1)"]
+    rows = []
+    for r in c.to_dict(orient="records"):
+        if not np.isfinite(r.get(f"spend ({cur})", np.nan)):
+            continue
+        m = lambda x: fmt_money(x, cur)  # noqa: E731
+        cells = [f'<td class="l">{esc(r["campaign"])}</td>', f"<td>{m(r[f'spend ({cur})'])}</td>",
+                 f"<td><b>{m(r[f'cost per incremental conversion, median ({cur})'])}</b></td>",
+                 f"<td>{_iv(r[f'cost per incremental conversion, {L}% lower ({cur})'], r[f'cost per incremental conversion, {L}% upper ({cur})'], m)}</td>"]
+        if has_value and np.isfinite(r.get("return on ad spend, median (x)", np.nan)):
+            cells += [f"<td>{m(r[f'incremental revenue, median ({cur})'])}</td>",
+                      f"<td>{_iv(r[f'incremental revenue, {L}% lower ({cur})'], r[f'incremental revenue, {L}% upper ({cur})'], m)}</td>",
+                      f"<td><b>{fmt_ratio(r['return on ad spend, median (x)'])}</b></td>",
+                      f"<td>{_iv(r[f'return on ad spend, {L}% lower (x)'], r[f'return on ad spend, {L}% upper (x)'], fmt_ratio)}</td>",
+                      f"<td>{fmt_prob(r['P(return > 1)'])}</td>"]
+        elif has_value:
+            cells += ["<td>n/a</td>"] * 5
+        rows.append("<tr>" + "".join(cells) + "</tr>")
+    th = "".join(f'<th class="l">{esc(h)}</th>' if i == 0 else f"<th>{esc(h)}</th>" for i, h in enumerate(head))
+    return f"<table><thead><tr>{th}</tr></thead><tbody>{''.join(rows)}</tbody></table>"
+
+
+def _df_table(df: pd.DataFrame, fmt: dict | None = None) -> str:
+    fmt = fmt or {}
+    th = "".join(f'<th class="l">{esc(c)}</th>' for c in df.columns)
+    body = []
+    for r in df.itertuples(index=False):
+        tds = []
+        for col, v in zip(df.columns, r, strict=True):
+            if col in fmt:
+                text = fmt[col](v)
+            elif isinstance(v, (float, np.floating)):
+                text = "n/a" if not np.isfinite(v) else f"{v:,.4g}"
+            elif isinstance(v, (bool, np.bool_)):
+                text = "yes" if v else "NO"
+            elif isinstance(v, (int, np.integer)):
+                text = f"{v:,}"
+            else:
+                text = str(v)
+            tds.append(f'<td class="l">{esc(text)}</td>')
+        body.append("<tr>" + "".join(tds) + "</tr>")
+    return f"<table><thead><tr>{th}</tr></thead><tbody>{''.join(body)}</tbody></table>"
+
+
+def render_html(t: ReportTables, figures: dict[str, bytes], paragraphs: list[tuple[str, str]], portfolio: str,
+                converged: bool, mode: str, flags: dict, title: str, prep_totals: dict | None) -> str:
+    L = int(round(t.level * 100))
+    parts = [f"<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\"><title>{esc(title)}</title>"
+             f"<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\"><style>{CSS}</style></head><body>"]
+    parts.append(f"<h1>{esc(title)}</h1><p class=\"sub\">Bias-corrected, partially pooled lift of display campaigns; "
+                 f"{L}% credible intervals; {esc(mode)} fit. An observational estimate, not a randomized test.</p>")
+    if mode == "full" and not converged:
+        parts.append('<div class="status bad">NOT CONVERGED: the sampler\'s checks failed (see the appendix). Do not '
+                     "use these numbers for decisions until a re-fit converges.</div>")
+    elif mode == "quick":
+        parts.append('<div class="status warn">Quick mode: an approximation for screening. The bias is one distribution '
+                     "for the whole portfolio; use the full model for decisions.</div>")
+    else:
+        parts.append('<div class="status">Convergence checks passed (R-hat, effective sample size, divergences).</div>')
+    for m in flags.get("messages", []):
+        parts.append(f'<div class="caution">{esc(m)}</div>')
+    parts.append("<h2>Summary</h2>")
+    parts.append(f"<p><b>Portfolio.</b> {esc(portfolio)}</p>")
+    for c, s in paragraphs:
+        parts.append(f'<p class="camp"><b>{esc(c)}</b> {esc(s)}</p>')
+    parts.append(f'<p class="muted">Intervals are {L}% credible intervals: given the model and its assumptions, the '
+                 f"value lies in the interval with {L}% probability. Lift is relative to what the seen users would "
+                 "have done without the ads.</p>")
+    parts.append("<h2>Results by campaign</h2><h3>Lift and incremental conversions</h3>")
+    parts.append(_lift_table(t))
+    parts.append("<h3>Cost and return</h3>")
+    parts.append(_money_table(t))
+    parts.append("<h2>Figures</h2>")
+    captions = {
+        "lift_by_campaign.png": "Naive (served vs not served), uncorrected (seen vs unseen within cells) and "
+                                "bias-corrected lift per campaign, with the pooled portfolio estimate.",
+        "placebo_check.png": "Each placebo outcome's seen-vs-unseen effect before and after the bias correction. "
+                             "Before: the bias the placebos reveal. After: close to zero when the correction works.",
+        "shrinkage.png": "Each campaign alone against the pooled estimate; small campaigns move towards the portfolio.",
+        "naive_to_corrected.png": "How each campaign's lift falls from the naive comparison to the bias-corrected one.",
+        "return_on_ad_spend.png": "Posterior of return on ad spend (incremental revenue divided by spend).",
+    }
+    for name, png in figures.items():
+        parts.append(_img(name, png, captions.get(name, name)))
+    parts.append("<h2>Assumptions and cautions</h2>")
+    parts.extend(f'<p class="caution">{c}</p>' for c in CAUTIONS)
+    parts.append("<h2>Appendix</h2><h3>Convergence diagnostics</h3>")
+    parts.append(_df_table(t.diagnostics))
+    if prep_totals:
+        parts.append("<h3>Data preparation</h3>")
+        parts.append(_df_table(pd.DataFrame([(k.replace("_", " "), v) for k, v in prep_totals.items()],
+                                            columns=["item", "count"])))
+    if t.prep is not None:
+        parts.append(_df_table(t.prep, {"nonviewable share": lambda v: fmt_pct(v, signed=False)}))
+    parts.append("<h3>Placebo check</h3>")
+    if not t.placebos.empty:
+        parts.append(_df_table(t.placebos.drop(columns=["pair"])))
+    parts.append("<h3>Model settings</h3>")
+    parts.append(_df_table(t.settings))
+    parts.append("<h3>Provenance</h3>")
+    parts.append(_df_table(t.provenance, {"value": lambda v: v}))
+    parts.append("</body></html>")
+    return "\n".join(parts)

@@ -1,0 +1,57 @@
+"""Number and money formatting for finance readers."""
+
+from __future__ import annotations
+
+import math
+
+__all__ = ["currency_symbol", "fmt_money", "fmt_pct", "fmt_int", "fmt_ratio", "fmt_prob"]
+
+_SYMBOLS = {"USD": "$", "EUR": "€", "GBP": "£", "JPY": "¥", "CAD": "C$", "AUD": "A$", "CHF": "CHF "}
+
+
+def currency_symbol(code: str) -> str:
+    """``$`` for USD, ``€`` for EUR...; other codes are written out (``SEK 1,000``)."""
+    code = (code or "USD").upper()
+    return _SYMBOLS.get(code, code + " ")
+
+
+def _bad(x) -> bool:
+    return x is None or (isinstance(x, float) and (math.isnan(x) or math.isinf(x)))
+
+
+def fmt_money(x, code: str = "USD", decimals: int | None = None) -> str:
+    """Money with thousands separators: ``$12,345`` (cents below 100)."""
+    if _bad(x):
+        return "not bounded" if isinstance(x, float) and math.isinf(x) else "n/a"
+    d = decimals if decimals is not None else (2 if abs(x) < 100 else 0)
+    sign = "-" if x < 0 else ""
+    return f"{sign}{currency_symbol(code)}{abs(x):,.{d}f}"
+
+
+def fmt_pct(x, decimals: int = 1, signed: bool = True) -> str:
+    """A fraction as a percentage: 0.123 -> ``+12.3%``."""
+    if _bad(x):
+        return "n/a"
+    return f"{x * 100:+,.{decimals}f}%" if signed else f"{x * 100:,.{decimals}f}%"
+
+
+def fmt_int(x) -> str:
+    if _bad(x):
+        return "n/a"
+    return f"{round(x):,}"
+
+
+def fmt_ratio(x) -> str:
+    if _bad(x):
+        return "n/a"
+    return f"{x:,.2f}x"
+
+
+def fmt_prob(p) -> str:
+    if _bad(p):
+        return "n/a"
+    if p > 0.995:
+        return "> 99%"
+    if p < 0.005:
+        return "< 1%"
+    return f"{p * 100:.0f}%"
