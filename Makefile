@@ -21,7 +21,7 @@ test: $(STAMP)
 	$(BIN)/python -m pytest
 
 lint: $(STAMP)
-	$(BIN)/ruff check liftpool data_prep models reports tests benchmarks
+	$(BIN)/ruff check liftpool data_prep models reports tests benchmarks validation
 
 bench: $(STAMP)
 	$(BIN)/python benchmarks/prep_throughput.py

@@ -52,6 +52,7 @@ class CampaignPlan:
     value_per_conversion: float
     cpm: float
     product_line: str
+    planned_return: float = 1.5  # invented: the budget is set so the true return on ad spend is about this
 
 
 @dataclass(frozen=True)
@@ -77,20 +78,20 @@ FERNHOLLOW = Scenario(
     n_users=250_000,
     campaigns=(
         CampaignPlan("spring-planters", "buy_planters", 60_000, 0.22, ("store_locator_visit", "buy_kitchenware"),
-                     42.0, 3.5, "garden"),
+                     42.0, 3.5, "garden", 2.2),
         CampaignPlan("kitchen-refresh", "buy_kitchenware", 40_000, 0.15, ("careers_page_visit", "buy_planters",
-                     "gift_card_balance_check"), 118.0, 4.0, "home"),
+                     "gift_card_balance_check"), 118.0, 4.0, "home", 1.4),
         CampaignPlan("patio-furniture", "buy_patio_set", 25_000, 0.30, ("store_locator_visit", "buy_lighting"),
-                     410.0, 5.0, "garden"),
+                     410.0, 5.0, "garden", 3.0),
         CampaignPlan("lighting-launch", "buy_lighting", 12_000, 0.05, ("careers_page_visit", "buy_patio_set"),
-                     150.0, 4.5, "home"),
-        CampaignPlan("tool-club", "join_tool_club", 3_000, 0.25, ("gift_card_balance_check",),
-                     64.0, 4.0, "garden"),
+                     150.0, 4.5, "home", 0.6),
+        CampaignPlan("tool-club", "join_tool_club", 3_000, 0.25, ("gift_card_balance_check",), 64.0, 4.0, "garden",
+                     1.1),
         CampaignPlan("seed-subscription", "subscribe_seeds", 1_500, 0.35, ("store_locator_visit",
-                     "careers_page_visit"), 90.0, 3.0, "garden"),
-        CampaignPlan("rain-barrels", "buy_rain_barrel", 800, 0.18, ("gift_card_balance_check",),
-                     105.0, 3.0, "garden"),
-        CampaignPlan("compost-kits", "buy_compost_kit", 600, 0.20, (), 55.0, 3.0, "garden"),
+                     "careers_page_visit"), 90.0, 3.0, "garden", 1.8),
+        CampaignPlan("rain-barrels", "buy_rain_barrel", 800, 0.18, ("gift_card_balance_check",), 105.0, 3.0,
+                     "garden", 0.8),
+        CampaignPlan("compost-kits", "buy_compost_kit", 600, 0.20, (), 55.0, 3.0, "garden", 1.3),
     ),
     outcome_base_rate={
         "buy_planters": 0.020, "buy_kitchenware": 0.018, "buy_patio_set": 0.010, "buy_lighting": 0.015,
@@ -259,8 +260,12 @@ def simulate(
     outcomes_df = pd.DataFrame(out_rows, columns=["campaign", "outcome", "role"])
     users_df = pd.DataFrame({"user_id": pd.Series(np.arange(n)).map(_uid), "device": device, "region": region,
                              "age": age})
-    n_imps = imp.groupby("campaign").size()
-    spend = pd.DataFrame([{"campaign": p.name, "spend": round(float(n_imps.get(p.name, 0)) * p.cpm / 1000, 2),
+    # Invented budgets: the simulated users are a sample of the audience, so media cost is not
+    # impressions x CPM here; each budget is set so the campaign's true return on ad spend is about
+    # its planned_return (some campaigns pay for themselves, some do not).
+    inc = {r["campaign"]: r["true_incremental_conversions"] for r in truth_rows}
+    spend = pd.DataFrame([{"campaign": p.name,
+                           "spend": float(max(50.0, round(inc[p.name] * p.value_per_conversion / p.planned_return, -1))),
                            "value_per_conversion": p.value_per_conversion} for p in scenario.campaigns])
     return {"impressions": impressions, "conversions": conversions, "outcomes": outcomes_df, "users": users_df,
             "spend": spend, "truth": pd.DataFrame(truth_rows)}

@@ -28,10 +28,11 @@ h1 { font-size: 17pt; margin: 0 0 2mm; } h2 { font-size: 13pt; margin: 7mm 0 2mm
 .status.bad { border: 3px double #111; background: #e6e6e6; font-weight: bold; }
 .status.warn { border-style: dashed; }
 .caution { border-left: 4px solid #111; padding: 1mm 3mm; margin: 3mm 0; background: #f2f2f2; }
-table { border-collapse: collapse; width: 100%; font-size: 8.2pt; margin: 2mm 0 3mm; }
-th, td { padding: 1.2mm 1.6mm; border-bottom: 0.6px solid #999; text-align: right; vertical-align: top; }
+table { border-collapse: collapse; width: 100%; font-size: 7.6pt; margin: 2mm 0 3mm; }
+th, td { padding: 1mm 1mm; border-bottom: 0.6px solid #999; text-align: right; vertical-align: top; }
 th { border-bottom: 1.5px solid #111; font-weight: bold; background: #f2f2f2; }
-td.l, th.l { text-align: left; } tr { page-break-inside: avoid; } thead { display: table-header-group; }
+td.l, th.l { text-align: left; } td.l { word-break: break-word; }
+th { font-size: 7.2pt; } tr { page-break-inside: avoid; } thead { display: table-header-group; }
 .fig { margin: 3mm 0 5mm; page-break-inside: avoid; } .fig img { max-width: 100%; height: auto; }
 .fig .cap { font-size: 8.5pt; color: #333; }
 p.camp { margin: 1.5mm 0; } .muted { color: #555; font-size: 8.5pt; }
@@ -66,7 +67,8 @@ def _img(name: str, png: bytes, caption: str) -> str:
 
 
 def _iv(lo, hi, f) -> str:
-    return f"{f(lo)} to {f(hi)}"
+    # a no-break space keeps "a to" together when a narrow (printed) column wraps
+    return f"{esc(f(lo))}\u00a0to {esc(f(hi))}"
 
 
 def _lift_table(t: ReportTables) -> str:
@@ -88,7 +90,9 @@ def _lift_table(t: ReportTables) -> str:
                  f"<td>{fmt_pct(r['naive lift, median (%)'] / 100) if np.isfinite(r['naive lift, median (%)']) else 'n/a'}</td>",
                  f"<td>{fmt_pct(r['uncorrected lift, median (%)'] / 100)}</td>"]
         if corrected:
-            p = lambda k: r[k] / 100  # noqa: E731
+            def p(k, r=r):
+                return r[k] / 100
+
             cells += [f"<td><b>{fmt_pct(p('lift, median (%)'))}</b></td>",
                       f"<td>{_iv(p('lift, 50% lower (%)'), p('lift, 50% upper (%)'), fmt_pct)}</td>",
                       f"<td>{_iv(p(f'lift, {L}% lower (%)'), p(f'lift, {L}% upper (%)'), fmt_pct)}</td>",
