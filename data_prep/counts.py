@@ -110,6 +110,9 @@ class PrepSummary:
 
 def _pivot_arms(users: pd.DataFrame) -> pd.DataFrame:
     ex = users[users["arm"].isin(["seen", "unseen"])]
+    if ex.empty:
+        return pd.DataFrame({"campaign": pd.Series(dtype=object), "cell": pd.Series(dtype=object),
+                             "seen": pd.Series(dtype="int64"), "unseen": pd.Series(dtype="int64")})
     p = ex.pivot_table(index=["campaign", "cell"], columns="arm", values="users", aggfunc="sum", fill_value=0)
     for a in ("seen", "unseen"):
         if a not in p.columns:
@@ -179,8 +182,7 @@ def finalize(raw: RawCounts, outcomes: pd.DataFrame, rules: CountingRules) -> tu
 def _summary(raw: RawCounts, p: pd.DataFrame, merged_users: pd.Series, counts: pd.DataFrame,
              roles: pd.DataFrame, rules: CountingRules) -> PrepSummary:
     camp = raw.campaigns.set_index("campaign").copy()
-    per = p.groupby("campaign")
-    camp["users_one_arm_cells"] = per.apply(lambda d: int(d.loc[d["one_arm"], "total"].sum()), include_groups=False)
+    camp["users_one_arm_cells"] = p[p["one_arm"]].groupby("campaign")["total"].sum()
     dropped_small = p[p["small"] & p["new_cell"].isna()].groupby("campaign")["total"].sum()
     camp["users_small_cells_dropped"] = dropped_small
     camp["users_small_cells_merged"] = merged_users
