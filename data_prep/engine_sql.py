@@ -18,7 +18,7 @@ from liftpool.data_prep.rules import FREQUENCY, VIEW_HISTORY, CountingRules
 from liftpool.data_prep.sources import Inputs
 from liftpool.data_prep.viewability import sql_measured, sql_viewable
 
-__all__ = ["build_exposures", "count_sql", "EXPOSURES_TABLE"]
+__all__ = ["build_exposures", "count_sql", "conversion_pairs", "save_cache", "EXPOSURES_TABLE"]
 
 EXPOSURES_TABLE = "exposures"
 
@@ -98,7 +98,6 @@ def count_sql(inputs: Inputs, rules: CountingRules, exposures: str = EXPOSURES_T
     w = rules.window_seconds
     knames = spec.key_names
     key_sel = "".join(f", {e} AS {k}" for e, k in zip(spec.sql_keys(cols), knames, strict=True))
-    ck = "".join(f", c.{k}" for k in knames)
     gk = ", ".join(["campaign", "arm", *knames])
     con.execute(f"""
         CREATE OR REPLACE TEMP TABLE _cells AS
@@ -108,28 +107,7 @@ def count_sql(inputs: Inputs, rules: CountingRules, exposures: str = EXPOSURES_T
         WHERE x.n_measured > 0
     """).fetchall()
     users = con.execute(f"SELECT {gk}, count(*) AS users FROM _cells GROUP BY {gk}").df()
-    pairs = con.execute(f"""
-        WITH ev AS (
-            SELECT c.campaign, c.arm{ck}, c.user_id, o.outcome,
-                   cv.converted_at > c.first_served
-                       AND cv.converted_at <= c.first_served + INTERVAL {w} SECOND AS inside,
-                   cv.converted_at <= c.first_served AS before,
-                   cv.converted_at > c.first_served + INTERVAL {w} SECOND AS after
-            FROM _cells c
-            JOIN t_outcomes o ON o.campaign = c.campaign
-            JOIN t_conversions cv ON cv.user_id = c.user_id AND cv.outcome = o.outcome
-        ), per_user AS (
-            SELECT {gk}, outcome, user_id,
-                   max(CASE WHEN inside THEN 1 ELSE 0 END) AS converted,
-                   sum(CASE WHEN before THEN 1 ELSE 0 END) AS n_before,
-                   sum(CASE WHEN inside THEN 1 ELSE 0 END) AS n_inside,
-                   sum(CASE WHEN after THEN 1 ELSE 0 END) AS n_after
-            FROM ev GROUP BY {gk}, outcome, user_id
-        )
-        SELECT {gk}, outcome, sum(converted) AS conversions,
-               sum(n_before) AS before_first_serve, sum(n_inside) AS in_window, sum(n_after) AS after_window
-        FROM per_user GROUP BY {gk}, outcome
-    """).df()
+    pairs = conversion_pairs(con, "_cells", ["campaign", "arm", *knames], w)
     users = label_cells(spec, users, ["campaign", "cell", "arm"])
     pairs = label_cells(spec, pairs, ["campaign", "cell", "arm", "outcome"])
     conversions = pairs[pairs["conversions"] > 0][["campaign", "cell", "arm", "outcome", "conversions"]]
@@ -155,6 +133,76 @@ def count_sql(inputs: Inputs, rules: CountingRules, exposures: str = EXPOSURES_T
         totals["users_table_rows"] = inputs.tables["users"].n_rows
     return RawCounts(users=users, conversions=conversions, windows=windows, campaigns=campaigns,
                      totals=totals)
+
+
+def conversion_pairs(con, cells: str, group: list[str], window_seconds: int) -> pd.DataFrame:
+    """Converters and conversion events by ``group`` and outcome, for a cells table and ``t_outcomes``.
+
+    ``cells`` has one row per exposed (user, campaign) with ``first_served`` and the ``group``
+    columns; conversions come from ``t_conversions``.
+    """
+    w = int(window_seconds)
+    gk = ", ".join(group)
+    ck = ", ".join(f"c.{g}" for g in group)
+    return con.execute(f"""
+        WITH ev AS (
+            SELECT {ck}, c.user_id, o.outcome,
+                   cv.converted_at > c.first_served
+                       AND cv.converted_at <= c.first_served + INTERVAL {w} SECOND AS inside,
+                   cv.converted_at <= c.first_served AS before,
+                   cv.converted_at > c.first_served + INTERVAL {w} SECOND AS after
+            FROM {cells} c
+            JOIN t_outcomes o ON o.campaign = c.campaign
+            JOIN t_conversions cv ON cv.user_id = c.user_id AND cv.outcome = o.outcome
+        ), per_user AS (
+            SELECT {gk}, outcome, user_id,
+                   max(CASE WHEN inside THEN 1 ELSE 0 END) AS converted,
+                   sum(CASE WHEN before THEN 1 ELSE 0 END) AS n_before,
+                   sum(CASE WHEN inside THEN 1 ELSE 0 END) AS n_inside,
+                   sum(CASE WHEN after THEN 1 ELSE 0 END) AS n_after
+            FROM ev GROUP BY {gk}, outcome, user_id
+        )
+        SELECT {gk}, outcome, sum(converted) AS conversions,
+               sum(n_before) AS before_first_serve, sum(n_inside) AS in_window, sum(n_after) AS after_window
+        FROM per_user GROUP BY {gk}, outcome
+    """).df()
+
+
+def save_cache(inputs: Inputs, rules: CountingRules, raw: RawCounts, folder, exposures: str = EXPOSURES_TABLE) -> None:
+    """Keep what a later re-count with new outcomes needs, as Parquet and JSON in ``folder``.
+
+    ``cells.parquet`` (one row per exposed user and campaign: first serve, arm, cell),
+    ``served.parquet`` (every served user and campaign), the raw cell counts and, with an
+    unexposed arm, the users-table ids.  These files hold user identifiers: they stay in the
+    workspace cache and never leave the data-preparation layer.
+    """
+    import json
+    from pathlib import Path
+
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    con = inputs.con
+    spec = cell_spec(rules, _numeric_values(inputs, rules))
+    knames = spec.key_names
+    keys = con.execute(f"SELECT DISTINCT {', '.join(knames) or '1 AS _none'} FROM _cells").df()
+    keys["cell"] = spec.label_keys([keys[k].to_numpy() for k in knames], len(keys))
+    con.register("_keymap", keys)
+    on = " AND ".join(f"c.{k} IS NOT DISTINCT FROM m.{k}" for k in knames) or "TRUE"
+
+    def copy(sql: str, name: str) -> None:
+        path = str(folder / name).replace("'", "''")
+        con.execute(f"COPY ({sql}) TO '{path}' (FORMAT PARQUET)").fetchall()
+
+    copy(f"SELECT c.user_id, c.campaign, c.first_served, c.arm, m.cell FROM _cells c JOIN _keymap m ON {on}",
+         "cells.parquet")
+    copy(f"SELECT user_id, campaign FROM {exposures}", "served.parquet")
+    copy(f"SELECT campaign, min(first_served) AS t0 FROM {exposures} GROUP BY campaign", "campaign_start.parquet")
+    if inputs.has("users"):
+        copy("SELECT user_id FROM t_users", "users.parquet")
+    con.unregister("_keymap")
+    for name in ("users", "conversions", "windows", "campaigns"):
+        getattr(raw, name).to_parquet(folder / f"raw_{name}.parquet", index=False)
+    (folder / "raw_totals.json").write_text(json.dumps({k: int(v) for k, v in raw.totals.items()}))
 
 
 def _add_unexposed(inputs: Inputs, rules: CountingRules, exposures: str,

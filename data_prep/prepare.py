@@ -10,7 +10,7 @@ import xarray as xr
 
 from liftpool.data_prep.counts import PrepSummary, finalize, to_dataset
 from liftpool.data_prep.engine_pandas import count_pandas, typed_frames
-from liftpool.data_prep.engine_sql import build_exposures, count_sql
+from liftpool.data_prep.engine_sql import build_exposures, count_sql, save_cache
 from liftpool.data_prep.errors import ConfigError
 from liftpool.data_prep.rules import BUILTIN_COVARIATES, CountingRules
 from liftpool.data_prep.sources import Inputs, open_inputs
@@ -55,6 +55,7 @@ def prepare_counts(
     engine: str = "duckdb",
     progress: Callable[[str], None] | None = None,
     inputs: Inputs | None = None,
+    cache=None,
 ) -> PrepResult:
     """Turn impression and conversion logs into seen/unseen counts by campaign, cell and outcome.
 
@@ -73,6 +74,10 @@ def prepare_counts(
         Called with a short text before each step.
     inputs : Inputs, optional
         Already opened and validated inputs (skips loading).
+    cache : path, optional
+        A new folder in which to keep the exposure cells and raw counts, so that
+        added placebo outcomes can be counted later without reading the impressions
+        again (DuckDB engine only).  It holds user identifiers: keep it private.
 
     Returns
     -------
@@ -96,6 +101,9 @@ def prepare_counts(
         build_exposures(inputs, rules)
         say("counting conversions by campaign, cell and arm")
         raw = count_sql(inputs, rules)
+        if cache is not None:
+            say("keeping the exposure cache")
+            save_cache(inputs, rules, raw, cache)
     else:
         say("loading typed tables into pandas")
         frames = typed_frames(inputs)

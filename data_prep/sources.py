@@ -151,17 +151,22 @@ def _load(con: duckdb.DuckDBPyConnection, kind: str, source) -> Table:
         con.register(f"df_{kind}", source)
         con.execute(f"CREATE OR REPLACE VIEW {raw} AS SELECT * FROM df_{kind}").fetchall()
     else:
-        path = Path(source)
-        label = str(source)
-        fmt = file_format(path)
-        if not path.is_file():
-            raise InputError(problem="file not found", file=label, fix="check the path and the file name")
-        if path.stat().st_size == 0:
-            raise InputError(problem="the file is empty", file=label,
-                             fix=f"export the {kind} table again; it needs a header and data rows")
-        p = _lit(str(path))
-        reader = (f"read_csv({p}, header = true, all_varchar = true)" if fmt == "csv"
-                  else f"read_parquet({p})")
+        paths = [Path(x) for x in source] if isinstance(source, (list, tuple)) else [Path(source)]
+        label = " + ".join(str(x) for x in paths)
+        fmts = {file_format(x) for x in paths}
+        if len(fmts) > 1:
+            raise InputError(problem="the files mix CSV and Parquet", file=label,
+                             fix=f"give all {kind} files in one format")
+        fmt = fmts.pop()
+        for path in paths:
+            if not path.is_file():
+                raise InputError(problem="file not found", file=str(path), fix="check the path and the file name")
+            if path.stat().st_size == 0:
+                raise InputError(problem="the file is empty", file=str(path),
+                                 fix=f"export the {kind} table again; it needs a header and data rows")
+        p = "[" + ", ".join(_lit(str(x)) for x in paths) + "]"
+        reader = (f"read_csv({p}, header = true, all_varchar = true, union_by_name = true)" if fmt == "csv"
+                  else f"read_parquet({p}, union_by_name = true)")
         try:
             con.execute(f"CREATE OR REPLACE VIEW {raw} AS SELECT * FROM {reader}").fetchall()
         except duckdb.Error as exc:

@@ -65,12 +65,13 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("prepare", help="logs to seen/unseen counts by campaign, cell and outcome",
                        description="Turn impression and conversion logs into a counts table and print the "
                                    "data-preparation summary.")
-    p.add_argument("--impressions", required=True, help="impressions file (.csv or .parquet)")
-    p.add_argument("--conversions", required=True, help="conversions file")
-    p.add_argument("--outcomes", required=True, help="outcomes file: campaign, outcome, role (target|placebo)")
+    p.add_argument("workspace", nargs="?", metavar="WS", help="a workspace (then its liftpool.toml gives the inputs)")
+    p.add_argument("--impressions", help="impressions file (.csv or .parquet)")
+    p.add_argument("--conversions", help="conversions file")
+    p.add_argument("--outcomes", help="outcomes file: campaign, outcome, role (target|placebo)")
     p.add_argument("--users", help="optional users file: user_id plus covariate columns")
     p.add_argument("--spend", help="optional spend file: campaign, spend, value_per_conversion (checked here)")
-    p.add_argument("--out", required=True, help="counts file to write (.parquet or .csv); the summary is "
+    p.add_argument("--out", help="counts file to write (.parquet or .csv); the summary is "
                    "written beside it as <name>.summary.json")
     p.add_argument("--engine", default="duckdb", choices=["duckdb", "pandas"],
                    help="counting engine (default duckdb: out of core)")
@@ -102,10 +103,11 @@ def build_parser() -> argparse.ArgumentParser:
 
 def _register_later(sub) -> None:
     """Commands of the model and report layers."""
-    from liftpool import cli_fit, cli_report
+    from liftpool import cli_fit, cli_report, cli_ws
 
     cli_fit.register(sub, _common)
     cli_report.register(sub, _common)
+    cli_ws.register(sub, _common, _rules_args, _rules_from_args)
 
 
 def _cmd_prepare(args, console: Console) -> int:
@@ -113,6 +115,14 @@ def _cmd_prepare(args, console: Console) -> int:
     from liftpool.data_prep.io import write_json, write_table
     from liftpool.data_prep.sources import file_format
 
+    if args.workspace:
+        return _prepare_workspace(args, console)
+    from liftpool.data_prep.errors import InputError
+
+    missing = [f"--{k}" for k in ("impressions", "conversions", "outcomes", "out") if not getattr(args, k)]
+    if missing:
+        raise InputError(problem=f"missing {', '.join(missing)}",
+                         fix="give a workspace (liftpool prepare WS) or the files and --out")
     out = Path(args.out)
     if file_format(out) not in ("parquet", "csv"):  # raises for unknown extensions
         return EXIT_INPUT
@@ -127,6 +137,25 @@ def _cmd_prepare(args, console: Console) -> int:
     console.out()
     console.out(f"counts: {out} ({len(res.counts):,} rows)")
     console.out(f"summary: {summary_path}")
+    return EXIT_OK
+
+
+def _prepare_workspace(args, console: Console) -> int:
+    from liftpool.data_prep.errors import InputError
+    from liftpool.workspace import Workspace
+
+    given = [f"--{k.replace('_', '-')}" for k in ("impressions", "conversions", "outcomes", "users", "spend", "out",
+                                                  "covariates", "window_days", "min_cell_users", "small_cells")
+             if getattr(args, k, None)]
+    if given:
+        raise InputError(problem=f"{', '.join(given)} cannot be used with a workspace",
+                         file=str(Path(args.workspace) / "liftpool.toml"),
+                         fix="set inputs and counting rules in the workspace's liftpool.toml")
+    ws = Workspace.open(args.workspace)
+    with ws.lock("prepare"):
+        summary = ws.prepare(progress=console.step)
+    console.out(summary.render())
+    console.out(f"\ncounts: {ws.current() / 'counts.parquet'}")
     return EXIT_OK
 
 

@@ -61,8 +61,9 @@ def register(sub, common) -> None:
     p = sub.add_parser("fit", help="counts to posterior: the hierarchical lift model",
                        description="Fit the bias-corrected, partially pooled lift model to a counts file and write "
                                    "DIR/posterior.nc, DIR/summary.csv and DIR/fit.json.")
-    p.add_argument("--counts", required=True, help="counts file (.parquet or .csv) from 'liftpool prepare'")
-    p.add_argument("--out", required=True, help="new folder for the fit (never written over)")
+    p.add_argument("workspace", nargs="?", metavar="WS", help="a workspace: fit its current counts into WS/fits/<id>")
+    p.add_argument("--counts", help="counts file (.parquet or .csv) from 'liftpool prepare'")
+    p.add_argument("--out", help="new folder for the fit (never written over)")
     model_args(p)
     common(p)
     p.set_defaults(func=cmd_fit)
@@ -73,6 +74,10 @@ def cmd_fit(args, console) -> int:
     from liftpool.data_prep.errors import InputError
     from liftpool.models import fit_counts
 
+    if args.workspace:
+        return _fit_workspace(args, console)
+    if not args.counts or not args.out:
+        raise InputError(problem="missing --counts or --out", fix="give a workspace (liftpool fit WS) or --counts and --out")
     out = Path(args.out)
     if out.exists() and any(out.iterdir()):
         raise InputError(problem="the folder already holds files; a fit is never written over another",
@@ -85,6 +90,29 @@ def cmd_fit(args, console) -> int:
     console.out(fit.render())
     console.out()
     console.out(f"fit written to {out}")
+    if args.strict and not fit.converged and fit.mode == "full":
+        return 3
+    return 0
+
+
+def _fit_workspace(args, console) -> int:
+    from liftpool.data_prep.errors import InputError
+    from liftpool.workspace import Workspace
+
+    if args.counts or args.out:
+        raise InputError(problem="--counts and --out cannot be used with a workspace",
+                         fix="the workspace's current counts are fitted into WS/fits/<id>")
+    ws = Workspace.open(args.workspace)
+    overrides = {k: getattr(args, k) for k in ("chains", "draws", "tune", "seed", "level", "sampler", "target_accept",
+                                               "parameterization", "bias_sign") if getattr(args, k) is not None}
+    if args.outcome_bias:
+        overrides["outcome_bias"] = True
+    with ws.lock("fit"):
+        fid, fit = ws.fit(quick=args.quick, progress=console.step, progressbar=console.tty and not console.quiet,
+                          groups=read_groups(args.groups), **overrides)
+    console.out(fit.render())
+    console.out()
+    console.out(f"fit {fid} written to {ws.path / 'fits' / fid}")
     if args.strict and not fit.converged and fit.mode == "full":
         return 3
     return 0

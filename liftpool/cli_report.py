@@ -12,8 +12,9 @@ def register(sub, common) -> None:
     p = sub.add_parser("report", help="posterior to a finance-ready report (HTML, XLSX, CSV, PNG)",
                        description="Write report.html (self-contained), tables.xlsx, one CSV per table and the "
                                    "figures for a fit.")
-    p.add_argument("--fit", required=True, help="fit folder written by 'liftpool fit'")
-    p.add_argument("--out", required=True, help="new folder for the report (never written over)")
+    p.add_argument("workspace", nargs="?", metavar="WS", help="a workspace: report one of its fits into WS/reports/<id>")
+    p.add_argument("--fit", help="fit folder written by 'liftpool fit' (with WS: a fit id; default the newest)")
+    p.add_argument("--out", help="new folder for the report (never written over)")
     p.add_argument("--spend", help="CSV or Parquet: campaign, spend, value_per_conversion")
     p.add_argument("--prep-summary", help="the <counts>.summary.json written by 'liftpool prepare'")
     p.add_argument("--currency", default="USD", help="ISO currency code of spend and values (default USD)")
@@ -28,6 +29,17 @@ def cmd_report(args, console) -> int:
     from liftpool.data_prep.errors import InputError
     from liftpool.reports import read_spend, write_report
 
+    if args.workspace:
+        from liftpool.workspace import Workspace
+
+        ws = Workspace.open(args.workspace)
+        with ws.lock("report"):
+            out = ws.report(args.fit, progress=console.step)
+        console.out(f"report written to {out}")
+        console.out(f"open {out / 'report.html'}")
+        return 0
+    if not args.fit or not args.out:
+        raise InputError(problem="missing --fit or --out", fix="give a workspace (liftpool report WS) or --fit and --out")
     spend = read_spend(args.spend) if args.spend else None
     prep = None
     if args.prep_summary:

@@ -307,6 +307,10 @@ def fit_counts(
                                   progressbar=progressbar, compute_convergence_checks=False)
         except Exception as exc:  # noqa: BLE001 - surfaced as a FitError with the cause
             raise FitError(f"sampling failed: {type(exc).__name__}: {exc}") from exc
+        got = idata.posterior.sizes
+        if got["chain"] != s.chains or got["draw"] != s.draws:
+            # PyMC returns what it has when interrupted; a partial trace is never a fit
+            raise KeyboardInterrupt("sampling was interrupted before all draws were made")
         info["sampling_seconds"] = round(time.perf_counter() - t0, 2)
         say("checking convergence")
         free = [v.name for v in model.free_RVs]

@@ -1,0 +1,62 @@
+"""How estimates moved between two fits: a table and a figure."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from liftpool.models.fit import FitResult
+from liftpool.reports.figures import STYLE, _png
+
+__all__ = ["compare_fits"]
+
+
+def compare_fits(a: FitResult, b: FitResult, name_a: str, name_b: str) -> tuple[pd.DataFrame, bytes]:
+    """Per campaign: the bias and the lift interval in each fit, and the change."""
+    import matplotlib.pyplot as plt
+
+    qa = "lift" if a.corrected else "lift_uncorrected"
+    qb = "lift" if b.corrected else "lift_uncorrected"
+    la, lb = a.table(qa), b.table(qb)
+    ba, bb = a.table("bias"), b.table("bias")
+    camps = sorted(set(la.index) | set(lb.index))
+    rows = []
+    for c in camps:
+        r = {"campaign": c}
+        for tag, lt, bt in ((name_a, la, ba), (name_b, lb, bb)):
+            if c in lt.index:
+                r[f"lift median ({tag})"] = lt.loc[c, "median"]
+                r[f"lift lower ({tag})"] = lt.loc[c, "lower"]
+                r[f"lift upper ({tag})"] = lt.loc[c, "upper"]
+                r[f"interval width ({tag})"] = lt.loc[c, "upper"] - lt.loc[c, "lower"]
+            r[f"bias median, log odds ({tag})"] = bt.loc[c, "median"] if c in bt.index else np.nan
+        r["change in lift median"] = r.get(f"lift median ({name_b})", np.nan) - r.get(f"lift median ({name_a})", np.nan)
+        r["change in interval width"] = (r.get(f"interval width ({name_b})", np.nan)
+                                         - r.get(f"interval width ({name_a})", np.nan))
+        rows.append(r)
+    table = pd.DataFrame(rows)
+    pooled = {"campaign": "(pooled bias mean, log odds)"}
+    for tag, f in ((name_a, a), (name_b, b)):
+        if "bias_mean" in f.idata.posterior:
+            d = f.idata.posterior["bias_mean"].values.ravel()
+            pooled[f"bias median, log odds ({tag})"] = float(np.median(d))
+    table = pd.concat([table, pd.DataFrame([pooled])], ignore_index=True)
+    with plt.rc_context(STYLE):
+        fig, (ax1, ax2) = plt.subplots(1, 2, figsize=(9, 0.45 * len(camps) + 1.4), sharey=True,
+                                       gridspec_kw={"width_ratios": [3, 2]})
+        y = np.arange(len(camps))[::-1]
+        for tag, off, color, m in ((name_a, 0.15, "0.55", "s"), (name_b, -0.15, "black", "o")):
+            t = table.set_index("campaign").loc[camps]
+            if f"lift median ({tag})" in t:
+                ax1.hlines(y + off, t[f"lift lower ({tag})"], t[f"lift upper ({tag})"], color=color, linewidth=1.6)
+                ax1.plot(t[f"lift median ({tag})"], y + off, m, color=color, label=f"fit {tag}")
+            ax2.plot(t[f"bias median, log odds ({tag})"], y + off, m, color=color, label=f"fit {tag}")
+        ax1.axvline(0, color="black", linewidth=0.8)
+        ax1.set_yticks(y, camps)
+        ax1.set_xlabel("lift (median and interval)")
+        ax1.xaxis.set_major_formatter(plt.FuncFormatter(lambda v, _p: f"{v:+.0%}"))
+        ax1.legend(fontsize=8, loc="lower right")
+        ax2.set_xlabel("bias on the target (log odds)")
+        ax1.set_title(f"How the estimates moved: fit {name_a} to fit {name_b}", loc="left")
+        png = _png(fig)
+    return table, png

@@ -1,0 +1,171 @@
+"""The workspace as an analyst uses it: commands in subprocesses, re-fits, interruptions, concurrency."""
+
+from __future__ import annotations
+
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+from liftpool.data_prep import write_scenario
+from liftpool.workspace import Workspace
+
+
+def run(*args, **kw):
+    return subprocess.run([sys.executable, "-m", "liftpool", *map(str, args)], capture_output=True, text=True, **kw)
+
+
+def start(*args):
+    return subprocess.Popen([sys.executable, "-m", "liftpool", *map(str, args)], stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, text=True)
+
+
+def snapshot(folder: Path) -> dict:
+    return {str(p.relative_to(folder)): p.read_bytes() for p in sorted(folder.rglob("*")) if p.is_file()}
+
+
+@pytest.fixture(scope="module")
+def data(tmp_path_factory):
+    d = tmp_path_factory.mktemp("data")
+    paths = write_scenario(d, seed=17, scale=0.1)
+    conv = pd.read_parquet(paths["conversions"])
+    # a placebo stream found later: its conversions arrive in their own file
+    later = conv[conv.outcome == "careers_page_visit"].assign(outcome="faq_page_visit")
+    later.to_parquet(d / "conversions_faq.parquet")
+    pd.DataFrame({"campaign": ["spring-planters", "tool-club"], "outcome": ["faq_page_visit"] * 2,
+                  "role": ["placebo"] * 2}).to_csv(d / "new_placebos.csv", index=False)
+    paths["later"] = d / "conversions_faq.parquet"
+    paths["new_placebos"] = d / "new_placebos.csv"
+    paths["n_later"] = len(later)
+    return paths
+
+
+def init(ws, data):
+    r = run("init", ws, "--impressions", data["impressions"], "--conversions", data["conversions"],
+            "--outcomes", data["outcomes"], "--users", data["users"], "--spend", data["spend"])
+    assert r.returncode == 0, r.stderr
+    return ws
+
+
+def test_refit_cycle_end_to_end(tmp_path, data):
+    ws = init(tmp_path / "ws", data)
+    assert run("check", ws).returncode == 0
+    r = run("prepare", ws, "-q")
+    assert r.returncode == 0, r.stderr
+    r = run("fit", ws, "--quick", "-q")
+    assert r.returncode == 0 and "fit 001-quick written" in r.stdout, r.stderr
+    assert run("report", ws, "-q").returncode == 0
+    assert (ws / "reports" / "001-quick" / "report.html").is_file()
+    first = snapshot(ws / "fits" / "001-quick")
+
+    r = run("add-placebo", ws, "--outcomes", data["new_placebos"], "--conversions", data["later"], "-q")
+    assert r.returncode == 0, r.stderr
+    # only the new outcome's conversions were read
+    assert f"read {data['n_later']:,} conversion rows of the new outcomes" in r.stdout
+    assert run("fit", ws, "--quick", "-q").returncode == 0
+    h = run("history", ws)
+    assert h.returncode == 0 and "001-quick" in h.stdout and "002-quick" in h.stdout
+    hist = Workspace.open(ws).history()
+    assert list(hist["placebo pairs"]) == [hist["placebo pairs"][0], hist["placebo pairs"][0] + 2]
+    c = run("compare", ws, "1", "2")
+    assert c.returncode == 0, c.stderr
+    assert (ws / "reports" / "compare-001-quick-vs-002-quick" / "compare.png").is_file()
+    assert "(pooled bias mean, log odds)" in c.stdout
+    # the first fit is untouched, byte for byte
+    assert snapshot(ws / "fits" / "001-quick") == first
+
+
+def test_add_placebo_equals_preparing_from_scratch(tmp_path, data):
+    a = Workspace.init(tmp_path / "a", data["impressions"], [data["conversions"]], [data["outcomes"]],
+                       users=data["users"])
+    a.prepare()
+    _, rows = a.add_placebo(data["new_placebos"], data["later"])
+    assert rows == data["n_later"]
+    b = Workspace.init(tmp_path / "b", data["impressions"], [data["conversions"], data["later"]],
+                       [data["outcomes"], data["new_placebos"]], users=data["users"])
+    b.prepare()
+    pd.testing.assert_frame_equal(a.counts(), b.counts())
+    # the workspace remembers the new outcomes and conversions
+    cfg = Workspace.open(tmp_path / "a").config["inputs"]
+    assert len(cfg["outcomes"]) == 2 and len(cfg["conversions"]) == 2
+
+
+def test_add_placebo_rejects_targets_and_duplicates(tmp_path, data):
+    ws = Workspace.init(tmp_path / "w", data["impressions"], [data["conversions"]], [data["outcomes"]])
+    ws.prepare()
+    bad = tmp_path / "bad.csv"
+    pd.DataFrame({"campaign": ["tool-club"], "outcome": ["join_tool_club"], "role": ["placebo"]}).to_csv(bad, index=False)
+    r = run("add-placebo", tmp_path / "w", "--outcomes", bad)
+    assert r.returncode == 2 and "already listed" in r.stderr and "Traceback" not in r.stderr
+    pd.DataFrame({"campaign": ["tool-club"], "outcome": ["x"], "role": ["target"]}).to_csv(bad, index=False)
+    r = run("add-placebo", tmp_path / "w", "--outcomes", bad)
+    assert r.returncode == 2 and "only placebo outcomes" in r.stderr
+
+
+def test_config_rejects_unknown_keys_listing_valid_ones(tmp_path, data):
+    ws = init(tmp_path / "ws", data)
+    cfg = (ws / "liftpool.toml").read_text().replace("[model]", "[model]\nchain = 4")
+    (ws / "liftpool.toml").write_text(cfg)
+    r = run("fit", ws, "--quick")
+    assert r.returncode == 2
+    assert "unknown setting(s) 'chain'; valid settings are:" in r.stderr and "chains" in r.stderr
+
+
+def _wait_for_lock(ws: Path, proc, timeout=120):
+    t0 = time.time()
+    while time.time() - t0 < timeout:
+        if (ws / ".lock").exists() and (ws / ".lock").read_text().startswith("fit"):
+            return
+        assert proc.poll() is None, proc.communicate()
+        time.sleep(0.2)
+    raise AssertionError("the fit never took the lock")
+
+
+@pytest.fixture(scope="module")
+def fitted_ws(tmp_path_factory, data):
+    ws = init(tmp_path_factory.mktemp("k") / "ws", data)
+    assert run("prepare", ws, "-q").returncode == 0
+    assert run("fit", ws, "--quick", "-q").returncode == 0
+    return ws
+
+
+@pytest.mark.parametrize("sig", [signal.SIGINT, signal.SIGKILL])
+def test_killed_fit_leaves_workspace_intact(fitted_ws, sig):
+    ws = fitted_ws
+    before = snapshot(ws / "fits") | {"CURRENT": (ws / "prepared" / "CURRENT").read_bytes()}
+    proc = start("fit", ws, "--draws", "20000", "--tune", "500", "-q")
+    _wait_for_lock(ws, proc)
+    time.sleep(4)  # compiling or sampling
+    os.kill(proc.pid, sig)
+    proc.communicate(timeout=120)
+    if sig == signal.SIGINT:
+        assert proc.returncode == 130
+    after = snapshot(ws / "fits") | {"CURRENT": (ws / "prepared" / "CURRENT").read_bytes()}
+    visible = {k: v for k, v in after.items() if not any(part.startswith(".") for part in Path(k).parts)}
+    assert visible == before
+    w = Workspace.open(ws)
+    assert w.fit_ids() == ["001-quick"] and len(w.counts()) > 0
+    # the lock is free again
+    assert run("fit", ws, "--quick", "-q").returncode == 0
+    assert Workspace.open(ws).fit_ids()[-1].endswith("quick")
+    import shutil
+
+    shutil.rmtree(ws / "fits" / Workspace.open(ws).fit_ids()[-1])
+
+
+def test_second_concurrent_fit_is_refused(fitted_ws):
+    ws = fitted_ws
+    proc = start("fit", ws, "--draws", "20000", "--tune", "500", "-q")
+    try:
+        _wait_for_lock(ws, proc)
+        r = run("fit", ws, "--quick")
+        assert r.returncode == 2
+        assert "the workspace is busy (fit, process" in r.stderr and "Traceback" not in r.stderr
+    finally:
+        proc.kill()
+        proc.communicate()
