@@ -16,7 +16,7 @@ from pathlib import Path
 
 import pandas as pd
 
-__all__ = ["atomic_path", "write_table", "write_json", "write_text", "read_table", "file_sha256"]
+__all__ = ["atomic_path", "atomic_folder", "write_table", "write_json", "write_text", "read_table", "file_sha256"]
 
 
 @contextlib.contextmanager
@@ -33,6 +33,31 @@ def atomic_path(path: str | os.PathLike) -> Iterator[Path]:
     finally:
         if tmp_path.exists():
             tmp_path.unlink()
+
+
+@contextlib.contextmanager
+def atomic_folder(path: str | os.PathLike) -> Iterator[Path]:
+    """Yield a hidden staging folder beside ``path``; on success rename it to ``path``.
+
+    ``path`` must not exist or be empty (nothing is ever written over).  On any
+    error, or an interrupt, the staging folder is removed and ``path`` is untouched.
+    """
+    import shutil
+
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent))
+    mask = os.umask(0)
+    os.umask(mask)
+    os.chmod(tmp, 0o777 & ~mask)
+    try:
+        yield tmp
+        if path.exists():
+            path.rmdir()
+        os.rename(tmp, path)
+    finally:
+        if tmp.exists():
+            shutil.rmtree(tmp, ignore_errors=True)
 
 
 def _write(path: str | os.PathLike, writer: Callable[[Path], None]) -> Path:

@@ -182,7 +182,42 @@ def _cmd_demo(args, console: Console) -> int:
     return run_demo(Path(args.workspace), seed=args.seed, console=console)
 
 
+_INTERRUPT_MESSAGE = "interrupted: nothing was changed by the unfinished step"
+
+
+def _install_interrupt_watchdog(grace_seconds: float = 10.0) -> None:
+    """Ctrl-C ends the command: politely first (KeyboardInterrupt), for sure after a grace period.
+
+    Libraries sometimes catch KeyboardInterrupt and carry on (a compile step, a sampler).
+    Every write liftpool makes is atomic, so ending the process is always safe.
+    """
+    import os
+    import signal
+    import threading
+
+    if threading.current_thread() is not threading.main_thread():
+        return
+    state = {"hit": False}
+
+    def hard_exit() -> None:
+        sys.stderr.write(_INTERRUPT_MESSAGE + "\n")
+        sys.stderr.flush()
+        os._exit(EXIT_INTERRUPTED)
+
+    def handler(signum, frame):
+        if state["hit"]:
+            hard_exit()
+        state["hit"] = True
+        timer = threading.Timer(grace_seconds, hard_exit)
+        timer.daemon = True
+        timer.start()
+        raise KeyboardInterrupt
+
+    signal.signal(signal.SIGINT, handler)
+
+
 def main(argv: list[str] | None = None) -> int:
+    _install_interrupt_watchdog()
     parser = build_parser()
     args = parser.parse_args(argv)
     if not getattr(args, "command", None):
@@ -199,7 +234,7 @@ def main(argv: list[str] | None = None) -> int:
             traceback.print_exc()
         return exc.exit_code
     except KeyboardInterrupt:
-        print("interrupted: nothing was changed by the unfinished step", file=sys.stderr)
+        print(_INTERRUPT_MESSAGE, file=sys.stderr)
         return EXIT_INTERRUPTED
     except Exception as exc:  # noqa: BLE001 - last resort
         print(f"internal error: {type(exc).__name__}: {exc}", file=sys.stderr)

@@ -5,7 +5,7 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
-__all__ = ["register", "settings_from_args", "model_args"]
+__all__ = ["register", "settings_from_args", "overrides_from_args", "model_args"]
 
 
 def model_args(p: argparse.ArgumentParser) -> None:
@@ -25,18 +25,20 @@ def model_args(p: argparse.ArgumentParser) -> None:
     g.add_argument("--strict", action="store_true", help="exit with code 3 when the fit did not converge")
 
 
+def overrides_from_args(args) -> dict:
+    """Model settings given on the command line (only those given)."""
+    vals = {name: getattr(args, name) for name in ("chains", "draws", "tune", "seed", "level", "sampler",
+                                                  "target_accept", "parameterization", "bias_sign")
+            if getattr(args, name, None) is not None}
+    if getattr(args, "outcome_bias", False):
+        vals["outcome_bias"] = True
+    return vals
+
+
 def settings_from_args(args, base: dict | None = None):
     from liftpool.models import ModelSettings
 
-    vals = dict(base or {})
-    for name in ("chains", "draws", "tune", "seed", "level", "sampler", "target_accept", "parameterization",
-                 "bias_sign"):
-        v = getattr(args, name, None)
-        if v is not None:
-            vals[name] = v
-    if getattr(args, "outcome_bias", False):
-        vals["outcome_bias"] = True
-    return ModelSettings.from_mapping(vals)
+    return ModelSettings.from_mapping({**(base or {}), **overrides_from_args(args)})
 
 
 def read_groups(path: str | None) -> dict[str, str] | None:
@@ -103,10 +105,7 @@ def _fit_workspace(args, console) -> int:
         raise InputError(problem="--counts and --out cannot be used with a workspace",
                          fix="the workspace's current counts are fitted into WS/fits/<id>")
     ws = Workspace.open(args.workspace)
-    overrides = {k: getattr(args, k) for k in ("chains", "draws", "tune", "seed", "level", "sampler", "target_accept",
-                                               "parameterization", "bias_sign") if getattr(args, k) is not None}
-    if args.outcome_bias:
-        overrides["outcome_bias"] = True
+    overrides = overrides_from_args(args)
     with ws.lock("fit"):
         fid, fit = ws.fit(quick=args.quick, progress=console.step, progressbar=console.tty and not console.quiet,
                           groups=read_groups(args.groups), **overrides)

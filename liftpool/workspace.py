@@ -22,7 +22,6 @@ import fcntl
 import json
 import os
 import shutil
-import tempfile
 import tomllib
 from collections.abc import Callable, Iterator
 from pathlib import Path
@@ -32,7 +31,7 @@ import tomli_w
 
 from liftpool.data_prep import CountingRules, PrepSummary, prepare_counts
 from liftpool.data_prep.errors import ConfigError, InputError, LiftpoolError
-from liftpool.data_prep.io import file_sha256, read_table, write_json, write_text
+from liftpool.data_prep.io import atomic_folder, file_sha256, read_table, write_json, write_text
 from liftpool.models import FitResult, ModelSettings, fit_counts, load_fit
 
 __all__ = ["Workspace", "WorkspaceBusyError", "CONFIG_NAME", "REPORT_KEYS", "INPUT_KEYS"]
@@ -228,13 +227,8 @@ class Workspace:
         prepared.mkdir(exist_ok=True)
         nums = [int(p.name.split("-")[1]) for p in prepared.glob("gen-*") if p.name.split("-")[1].isdigit()]
         name = f"gen-{1 + max(nums, default=0):03d}"
-        tmp = Path(tempfile.mkdtemp(prefix=f".{name}.", suffix=".tmp", dir=prepared))
-        try:
+        with atomic_folder(prepared / name) as tmp:
             build(tmp)
-            os.rename(tmp, prepared / name)
-        finally:
-            if tmp.exists():
-                shutil.rmtree(tmp, ignore_errors=True)
         return name
 
     def _switch(self, name: str) -> Path:
@@ -323,18 +317,17 @@ class Workspace:
         n = 1 + max([int(p.name.split("-")[0]) for p in fits.iterdir() if p.name[:3].isdigit()], default=0)
         fid = f"{n:03d}-{fit.mode}"
         gen = self.current()
-        staging = fits / f".{fid}.staging"
-        shutil.rmtree(staging, ignore_errors=True)
-        fit.save(staging)
         ps = self.prep_summary()
-        write_json({"id": fid, "created": _now(), "mode": fit.mode, "prepared": gen.name if gen else None,
-                    "counts_sha256": fit.info.get("counts_sha256"),
-                    "inputs_sha256": (ps.totals.get("input_sha256") if ps else {}),
-                    "config": self.config, "seed": settings.seed, "versions": fit.info.get("versions"),
-                    "converged": fit.converged, "diagnostics": fit.diagnostics.to_dict(),
-                    "placebo_pairs": int((counts.drop_duplicates(["campaign", "outcome"]).role == "placebo").sum())},
-                   staging / "manifest.json")
-        os.rename(staging, fits / fid)
+        with atomic_folder(fits / fid) as staging:
+            fit.save(staging)
+            write_json({"id": fid, "created": _now(), "mode": fit.mode, "prepared": gen.name if gen else None,
+                        "counts_sha256": fit.info.get("counts_sha256"),
+                        "inputs_sha256": (ps.totals.get("input_sha256") if ps else {}),
+                        "config": self.config, "seed": settings.seed, "versions": fit.info.get("versions"),
+                        "converged": fit.converged, "diagnostics": fit.diagnostics.to_dict(),
+                        "placebo_pairs": int((counts.drop_duplicates(["campaign", "outcome"]).role
+                                              == "placebo").sum())},
+                       staging / "manifest.json")
         return fid, fit
 
     def fit_ids(self) -> list[str]:

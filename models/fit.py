@@ -6,11 +6,10 @@ summary, diagnostics and flags goes out to the reports layer.
 
 from __future__ import annotations
 
+import contextlib
 import datetime as _dt
 import json
 import os
-import shutil
-import tempfile
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -22,7 +21,7 @@ import pandas as pd
 import xarray as xr
 
 from liftpool.data_prep.errors import InputError
-from liftpool.data_prep.io import write_json
+from liftpool.data_prep.io import atomic_folder, write_json
 from liftpool.models.design import CampaignFlags, Design, make_design
 from liftpool.models.diagnostics import Diagnostics, check_convergence
 from liftpool.models.errors import FitError
@@ -94,21 +93,12 @@ class FitResult:
         if folder.exists() and any(folder.iterdir()):
             raise InputError(problem="the folder already holds files; a fit is never written over another",
                              file=str(folder), fix="choose a new --out folder")
-        folder.parent.mkdir(parents=True, exist_ok=True)
-        tmp = Path(tempfile.mkdtemp(prefix=f".{folder.name}.", suffix=".tmp", dir=folder.parent))
-        os.chmod(tmp, 0o777 & ~_umask())
-        try:
+        with atomic_folder(folder) as tmp:
             self.idata.to_netcdf(str(tmp / "posterior.nc"), engine="h5netcdf")
             self.summary.to_csv(tmp / "summary.csv", index=False)
             write_json({"mode": self.mode, "settings": self.settings.to_dict(),
                         "diagnostics": self.diagnostics.to_dict(), "flags": self.flags.to_dict(),
                         "info": self.info}, tmp / "fit.json")
-            if folder.exists():
-                folder.rmdir()
-            os.rename(tmp, folder)
-        finally:
-            if tmp.exists():
-                shutil.rmtree(tmp, ignore_errors=True)
         return folder
 
     def render(self) -> str:
@@ -158,6 +148,31 @@ def load_fit(folder: str | os.PathLike) -> FitResult:
     return FitResult(idata=idata, summary=summary, diagnostics=Diagnostics.from_dict(meta["diagnostics"]),
                      flags=CampaignFlags(**flags_d), settings=ModelSettings.from_mapping(meta["settings"]),
                      mode=meta["mode"], info=meta.get("info", {}))
+
+
+@contextlib.contextmanager
+def _interrupt_watch():
+    """Note a Ctrl-C during sampling: PyMC catches it and may fail or return a partial trace instead."""
+    import signal
+    import threading
+
+    flag = {"hit": False}
+    if threading.current_thread() is not threading.main_thread():
+        yield lambda: False
+        return
+    previous = signal.getsignal(signal.SIGINT)
+
+    def handler(signum, frame):
+        flag["hit"] = True
+        if callable(previous) and previous not in (signal.default_int_handler,):
+            previous(signum, frame)  # e.g. the command line's watchdog
+        raise KeyboardInterrupt
+
+    signal.signal(signal.SIGINT, handler)
+    try:
+        yield lambda: flag["hit"]
+    finally:
+        signal.signal(signal.SIGINT, previous)
 
 
 def counts_hash(counts: pd.DataFrame) -> str:
@@ -299,14 +314,19 @@ def fit_counts(
 
         say(f"sampling: {s.chains} chains x ({s.tune} tuning + {s.draws} draws), sampler {s.sampler}, "
             f"seed {s.seed}")
-        try:
-            with model:
-                idata = pm.sample(draws=s.draws, tune=s.tune, chains=s.chains,
-                                  cores=min(s.chains, default_cores()), random_seed=s.seed,
-                                  target_accept=s.target_accept, nuts_sampler=s.sampler,
-                                  progressbar=progressbar, compute_convergence_checks=False)
-        except Exception as exc:  # noqa: BLE001 - surfaced as a FitError with the cause
-            raise FitError(f"sampling failed: {type(exc).__name__}: {exc}") from exc
+        with _interrupt_watch() as interrupted:
+            try:
+                with model:
+                    idata = pm.sample(draws=s.draws, tune=s.tune, chains=s.chains,
+                                      cores=min(s.chains, default_cores()), random_seed=s.seed,
+                                      target_accept=s.target_accept, nuts_sampler=s.sampler,
+                                      progressbar=progressbar, compute_convergence_checks=False)
+            except Exception as exc:  # noqa: BLE001 - surfaced as a FitError with the cause
+                if interrupted():
+                    raise KeyboardInterrupt("sampling was interrupted") from None
+                raise FitError(f"sampling failed: {type(exc).__name__}: {exc}") from exc
+            if interrupted():
+                raise KeyboardInterrupt("sampling was interrupted")
         got = idata.posterior.sizes
         if got["chain"] != s.chains or got["draw"] != s.draws:
             # PyMC returns what it has when interrupted; a partial trace is never a fit
@@ -350,9 +370,3 @@ def fit_counts(
                                   "corrected": int(corrected)})
     return FitResult(idata=idata, summary=summary, diagnostics=diag, flags=d.flags, settings=s,
                      mode="quick" if quick else "full", info=info)
-
-
-def _umask() -> int:
-    mask = os.umask(0)
-    os.umask(mask)
-    return mask

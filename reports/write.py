@@ -3,14 +3,13 @@
 from __future__ import annotations
 
 import os
-import shutil
-import tempfile
 from pathlib import Path
 
 import pandas as pd
 
 from liftpool.data_prep.counts import PrepSummary
 from liftpool.data_prep.errors import InputError
+from liftpool.data_prep.io import atomic_folder
 from liftpool.models.fit import FitResult, load_fit
 from liftpool.reports.figures import make_figures
 from liftpool.reports.html import render_html
@@ -87,10 +86,7 @@ def write_report(
         totals = {k: v for k, v in prep_summary.totals.items() if not isinstance(v, dict)}
     html = render_html(tables, figures, campaign_paragraphs(tables, flags), portfolio_paragraph(tables),
                        fit.converged, fit.mode, flags, title, totals)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".tmp", dir=out.parent))
-    os.chmod(tmp, 0o777 & ~_umask())
-    try:
+    with atomic_folder(out) as tmp:
         (tmp / "report.html").write_text(html, encoding="utf-8")
         named = tables.named()
         write_xlsx(named, tmp / "tables.xlsx")
@@ -99,16 +95,4 @@ def write_report(
         (tmp / "figures").mkdir()
         for name, png in figures.items():
             (tmp / "figures" / name).write_bytes(png)
-        if out.exists():
-            out.rmdir()
-        os.rename(tmp, out)
-    finally:
-        if tmp.exists():
-            shutil.rmtree(tmp, ignore_errors=True)
     return out
-
-
-def _umask() -> int:
-    mask = os.umask(0)
-    os.umask(mask)
-    return mask
