@@ -2,10 +2,11 @@
 
 from __future__ import annotations
 
-from dataclasses import asdict, dataclass, field, fields
+from dataclasses import dataclass, field
 from typing import Any
 
 from liftpool.data_prep.errors import ConfigError
+from liftpool.data_prep.options import OptionsMixin
 
 __all__ = [
     "CountingRules",
@@ -24,7 +25,7 @@ SMALL_CELL_POLICIES = ("merge", "drop")
 
 
 @dataclass(frozen=True)
-class CountingRules:
+class CountingRules(OptionsMixin):
     """How logs become seen/unseen counts.
 
     Parameters
@@ -99,25 +100,6 @@ class CountingRules:
         if self.large_ad_pixels < 1:
             raise ConfigError(problem="'large_ad_pixels' must be positive", fix="set large_ad_pixels to 242500")
 
-    @classmethod
-    def option_names(cls) -> list[str]:
-        return [f.name for f in fields(cls) if f.name != "extra"]
-
-    @classmethod
-    def from_mapping(cls, values: dict[str, Any]) -> CountingRules:
-        """Build from a mapping (a config file section); unknown keys are an error listing valid ones."""
-        names = set(cls.option_names())
-        known = {k: v for k, v in values.items() if k in names}
-        unknown = {k: v for k, v in values.items() if k not in names}
-        return cls(**known, extra=unknown)
-
-    def to_dict(self) -> dict[str, Any]:
-        d = asdict(self)
-        d.pop("extra")
-        for k, v in d.items():
-            if isinstance(v, tuple):
-                d[k] = list(v)
-        return d
 
     @property
     def window_seconds(self) -> int:

@@ -89,12 +89,15 @@ def cmd_fit(args, console) -> int:
     fit = fit_counts(counts, settings, quick=args.quick, groups=read_groups(args.groups), progress=console.step,
                      progressbar=console.tty and not console.quiet)
     fit.save(out)
+    return _finish(fit, f"fit written to {out}", args, console)
+
+
+def _finish(fit, where: str, args, console) -> int:
+    """Print the result and where it went; exit 3 for a non-converged fit under --strict."""
     console.out(fit.render())
     console.out()
-    console.out(f"fit written to {out}")
-    if args.strict and not fit.converged and fit.mode == "full":
-        return 3
-    return 0
+    console.out(where)
+    return 3 if args.strict and not fit.converged and fit.mode == "full" else 0
 
 
 def _fit_workspace(args, console) -> int:
@@ -109,9 +112,4 @@ def _fit_workspace(args, console) -> int:
     with ws.lock("fit"):
         fid, fit = ws.fit(quick=args.quick, progress=console.step, progressbar=console.tty and not console.quiet,
                           groups=read_groups(args.groups), **overrides)
-    console.out(fit.render())
-    console.out()
-    console.out(f"fit {fid} written to {ws.path / 'fits' / fid}")
-    if args.strict and not fit.converged and fit.mode == "full":
-        return 3
-    return 0
+    return _finish(fit, f"fit {fid} written to {ws.path / 'fits' / fid}", args, console)

@@ -3,10 +3,11 @@
 from __future__ import annotations
 
 import os
-from dataclasses import asdict, dataclass, field, fields
+from dataclasses import dataclass, field, fields
 from typing import Any
 
 from liftpool.data_prep.errors import ConfigError
+from liftpool.data_prep.options import OptionsMixin
 
 __all__ = ["ModelSettings", "SAMPLERS", "PARAMETERIZATIONS", "BIAS_SIGNS", "default_cores"]
 
@@ -20,7 +21,7 @@ def default_cores() -> int:
 
 
 @dataclass(frozen=True)
-class ModelSettings:
+class ModelSettings(OptionsMixin):
     """Settings of the hierarchical lift model (all scales on the log-odds scale).
 
     Parameters
@@ -96,18 +97,3 @@ class ModelSettings:
         for f in fields(self):
             if f.name.endswith("_scale") and not getattr(self, f.name) > 0:
                 raise ConfigError(problem=f"'{f.name}' must be positive", fix=f"set '{f.name}' > 0")
-
-    @classmethod
-    def option_names(cls) -> list[str]:
-        return [f.name for f in fields(cls) if f.name != "extra"]
-
-    @classmethod
-    def from_mapping(cls, values: dict[str, Any]) -> ModelSettings:
-        names = set(cls.option_names())
-        return cls(**{k: v for k, v in values.items() if k in names},
-                   extra={k: v for k, v in values.items() if k not in names})
-
-    def to_dict(self) -> dict[str, Any]:
-        d = asdict(self)
-        d.pop("extra")
-        return d
