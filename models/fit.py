@@ -58,7 +58,9 @@ class FitResult:
     settings : ModelSettings
     mode : {"full", "quick"}
     info : dict
-        Timings, backend, package versions, counts size.
+        Timings, backend, package versions, counts size, predictive-check summaries.
+    predictive : DataFrame or None
+        The posterior predictive check by (campaign, outcome, arm) (full fits).
     """
 
     idata: az.InferenceData
@@ -68,6 +70,7 @@ class FitResult:
     settings: ModelSettings
     mode: str
     info: dict = field(default_factory=dict)
+    predictive: pd.DataFrame | None = None
 
     @property
     def converged(self) -> bool:
@@ -96,6 +99,8 @@ class FitResult:
         with atomic_folder(folder) as tmp:
             self.idata.to_netcdf(str(tmp / "posterior.nc"), engine="h5netcdf")
             self.summary.to_csv(tmp / "summary.csv", index=False)
+            if self.predictive is not None:
+                self.predictive.to_csv(tmp / "predictive_check.csv", index=False)
             write_json({"mode": self.mode, "settings": self.settings.to_dict(),
                         "diagnostics": self.diagnostics.to_dict(), "flags": self.flags.to_dict(),
                         "info": self.info}, tmp / "fit.json")
@@ -144,10 +149,12 @@ def load_fit(folder: str | os.PathLike) -> FitResult:
     meta = json.loads(meta_path.read_text())
     idata = az.from_netcdf(str(folder / "posterior.nc"), engine="h5netcdf")
     summary = pd.read_csv(folder / "summary.csv", keep_default_na=False, na_values=[""])
+    pc = folder / "predictive_check.csv"
+    predictive = pd.read_csv(pc, keep_default_na=False, na_values=[""]) if pc.is_file() else None
     flags_d = {k: v for k, v in meta["flags"].items() if k != "messages"}
     return FitResult(idata=idata, summary=summary, diagnostics=Diagnostics.from_dict(meta["diagnostics"]),
                      flags=CampaignFlags(**flags_d), settings=ModelSettings.from_mapping(meta["settings"]),
-                     mode=meta["mode"], info=meta.get("info", {}))
+                     mode=meta["mode"], info=meta.get("info", {}), predictive=predictive)
 
 
 @contextlib.contextmanager
@@ -281,6 +288,7 @@ def fit_counts(
             "campaigns": d.n_campaigns, "rows": int(len(d.users)), "strata": int(len(d.stratum_pair)),
             "pairs": int(len(d.pair_campaign))}
     t0 = time.perf_counter()
+    predictive = None
     if quick:
         say("quick mode: stratified estimates and exact pooling")
         r = quick_fit(d, s)
@@ -336,6 +344,14 @@ def fit_counts(
         free = [v.name for v in model.free_RVs]
         diag = check_convergence(idata, var_names=free + [v for v in ("lift", "lift_uncorrected", "bias_target",
                                                                       "incremental_conversions")])
+        say("prior and posterior predictive checks")
+        from liftpool.models.predictive import posterior_predictive_check, prior_predictive_lift
+
+        predictive = posterior_predictive_check(d, model, idata, s.level, s.seed)
+        info["posterior_predictive"] = {"groups": int(len(predictive)),
+                                        "inside_interval": float(predictive["inside"].mean()),
+                                        "level": s.level}
+        info["prior_predictive"] = prior_predictive_lift(model, s.seed)
         idata.posterior = idata.posterior.drop_vars([v for v in LARGE_VARS if v in idata.posterior])
         post = idata.posterior
         rng_new = np.random.default_rng(s.seed + 2)
@@ -369,4 +385,4 @@ def fit_counts(
     idata.posterior.attrs.update({"liftpool_mode": "quick" if quick else "full", "seed": s.seed,
                                   "corrected": int(corrected)})
     return FitResult(idata=idata, summary=summary, diagnostics=diag, flags=d.flags, settings=s,
-                     mode="quick" if quick else "full", info=info)
+                     mode="quick" if quick else "full", info=info, predictive=predictive)

@@ -212,6 +212,13 @@ def render_html(t: ReportTables, figures: dict[str, bytes], paragraphs: list[tup
     parts.append("<h3>Placebo check</h3>")
     if not t.placebos.empty:
         parts.append(_df_table(t.placebos.drop(columns=["pair"])))
+    if t.predictive is not None:
+        inside = float(t.predictive["inside"].mean())
+        parts.append(f"<h3>Posterior predictive check</h3><p>Observed conversions by campaign, outcome and arm "
+                     f"fall inside their {L}% predictive interval in {inside:.0%} of {len(t.predictive)} groups "
+                     "(about {L}% expected; far fewer would mean the model does not fit the data).</p>"
+                     .replace("{L}", str(L)))
+        parts.append(_df_table(t.predictive))
     parts.append("<h3>Model settings</h3>")
     parts.append(_df_table(t.settings))
     parts.append("<h3>Provenance</h3>")

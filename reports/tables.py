@@ -42,6 +42,7 @@ class ReportTables:
     prep: pd.DataFrame | None
     settings: pd.DataFrame
     provenance: pd.DataFrame
+    predictive: pd.DataFrame | None = None
     draws: dict = field(default_factory=dict, repr=False)
     currency: str = "USD"
     level: float = 0.9
@@ -52,6 +53,8 @@ class ReportTables:
                "convergence": self.diagnostics, "model_settings": self.settings, "provenance": self.provenance}
         if self.prep is not None:
             out["data_preparation"] = self.prep
+        if self.predictive is not None:
+            out["predictive_check"] = self.predictive
         return out
 
 
@@ -185,6 +188,7 @@ def build_tables(fit: FitResult, spend: pd.DataFrame | None = None, prep_campaig
     return ReportTables(campaigns=campaigns, portfolio=portfolio, placebos=placebos, shrinkage=shrink,
                         diagnostics=diag, prep=prep, settings=settings,
                         provenance=pd.DataFrame(prov, columns=["item", "value"]), draws=draws,
+                        predictive=fit.predictive,
                         currency=cur, level=level)
 
 

@@ -153,3 +153,14 @@ def test_same_seed_same_result():
     s = ModelSettings(draws=100, tune=100, seed=9)
     a, b = fit_counts(counts_of(rows), s), fit_counts(counts_of(rows), s)
     pd.testing.assert_frame_equal(a.summary, b.summary)
+
+
+def test_posterior_predictive_check_covers_observed(demo_fit):
+    fit, _ = demo_fit
+    pc = fit.predictive
+    assert pc is not None and len(pc) >= 16
+    # observed totals by (campaign, outcome, arm) inside their 90% predictive interval about 90% of the time
+    assert pc["inside"].mean() >= 0.8, pc[~pc["inside"]]
+    q = fit.info["prior_predictive"]["lift_prior_quantiles"]
+    assert q["q05"] < 0 < q["q95"]  # the priors alone allow a negative or positive lift (weakly informative)
+    assert q["q95"] < 5  # ... but not wildly implausible ones
