@@ -15,6 +15,7 @@ $(STAMP): pyproject.toml
 	@touch $(STAMP)
 
 demo: $(STAMP)
+	@rm -rf demo-workspace
 	$(BIN)/liftpool demo demo-workspace
 
 test: $(STAMP)
