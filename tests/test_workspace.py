@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import os
 import signal
 import subprocess
@@ -21,8 +22,20 @@ def run(*args, **kw):
 
 
 def start(*args):
-    return subprocess.Popen([sys.executable, "-m", "liftpool", *map(str, args)], stdout=subprocess.PIPE,
-                            stderr=subprocess.PIPE, text=True)
+    """A command in its own process group, as a terminal runs a job (Ctrl-C reaches the whole group).
+
+    Output goes to files, not pipes: sampler worker processes inherit them.
+    """
+    import tempfile
+
+    out = tempfile.TemporaryFile(mode="w+")
+    return subprocess.Popen([sys.executable, "-m", "liftpool", *map(str, args)], stdout=out, stderr=out, text=True,
+                            start_new_session=True)
+
+
+def stop(proc, sig=signal.SIGKILL) -> None:
+    with contextlib.suppress(ProcessLookupError):
+        os.killpg(proc.pid, sig)
 
 
 def snapshot(folder: Path) -> dict:
@@ -121,7 +134,7 @@ def _wait_for_lock(ws: Path, proc, timeout=120):
     while time.time() - t0 < timeout:
         if (ws / ".lock").exists() and (ws / ".lock").read_text().startswith("fit"):
             return
-        assert proc.poll() is None, proc.communicate()
+        assert proc.poll() is None, f"the fit ended early with code {proc.returncode}"
         time.sleep(0.2)
     raise AssertionError("the fit never took the lock")
 
@@ -141,10 +154,12 @@ def test_killed_fit_leaves_workspace_intact(fitted_ws, sig):
     proc = start("fit", ws, "--draws", "20000", "--tune", "500", "-q")
     _wait_for_lock(ws, proc)
     time.sleep(4)  # compiling or sampling
-    os.kill(proc.pid, sig)
-    proc.communicate(timeout=120)
+    stop(proc, sig)  # Ctrl-C in a terminal, or kill -9 of the job
+    proc.wait(timeout=120)
     if sig == signal.SIGINT:
         assert proc.returncode == 130
+    else:
+        time.sleep(1)  # let the killed group's worker processes go
     after = snapshot(ws / "fits") | {"CURRENT": (ws / "prepared" / "CURRENT").read_bytes()}
     visible = {k: v for k, v in after.items() if not any(part.startswith(".") for part in Path(k).parts)}
     assert visible == before
@@ -167,5 +182,5 @@ def test_second_concurrent_fit_is_refused(fitted_ws):
         assert r.returncode == 2
         assert "the workspace is busy (fit, process" in r.stderr and "Traceback" not in r.stderr
     finally:
-        proc.kill()
-        proc.communicate()
+        stop(proc)
+        proc.wait(timeout=60)
