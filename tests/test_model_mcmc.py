@@ -105,9 +105,11 @@ def test_summary_shape_and_pooled_rows(demo_fit):
 def test_save_load_roundtrip_and_no_overwrite(demo_fit, tmp_path):
     fit, _ = demo_fit
     out = fit.save(tmp_path / "fit1")
-    assert sorted(p.name for p in out.iterdir()) == ["fit.json", "posterior.nc", "summary.csv"]
+    assert sorted(p.name for p in out.iterdir()) == ["fit.json", "posterior.nc", "predictive_check.csv",
+                                                     "summary.csv"]
     back = load_fit(out)
     pd.testing.assert_frame_equal(back.summary, fit.summary)
+    pd.testing.assert_frame_equal(back.predictive, fit.predictive, check_dtype=False)
     assert list(back.idata.posterior["lift"].campaign.values) == list(fit.idata.posterior.campaign.values)
     assert json.loads((out / "fit.json").read_text())["settings"]["seed"] == 21
     before = (out / "posterior.nc").read_bytes()
