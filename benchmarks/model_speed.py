@@ -7,7 +7,7 @@
    installed (pymc, nutpie), compile versus sampling time.
 3. scale: 200 campaigns x 24 cells x 6 outcomes; time, peak memory, divergences.
 
-Usage: python benchmarks/model_speed.py [counts] [samplers] [scale]
+Usage: python benchmarks/model_speed.py [counts] [samplers] [scale] [--draws=N --tune=N (scale)]
 """
 
 from __future__ import annotations
@@ -150,19 +150,25 @@ def bench_samplers() -> None:
         print(line, flush=True)
 
 
-def bench_scale() -> None:
+def bench_scale(draws: int = 1000, tune: int = 1000) -> None:
     counts = synthetic_counts(200, 24, 6, users_per_cell=400, seed=2)
     t = time.perf_counter()
-    f = fit_counts(counts, ModelSettings(draws=1000, tune=1000))
+    f = fit_counts(counts, ModelSettings(draws=draws, tune=tune), progress=lambda m: print(m, flush=True))
     secs = time.perf_counter() - t
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
-    print(f"scale: {len(counts):,} count rows (200 campaigns x 24 cells x 6 outcomes x 2 arms): {secs / 60:.1f} min, "
+    print(f"scale: {len(counts):,} count rows (200 campaigns x 24 cells x 6 outcomes x 2 arms), {tune} tuning + "
+          f"{draws} draws x 4 chains: {secs / 60:.1f} min, "
           f"peak {peak:,.0f} MB (parent process; chains run in worker processes)")
     print(f.diagnostics.render())
 
 
 if __name__ == "__main__":
-    which = sys.argv[1:] or ["counts", "samplers", "scale"]
+    args = sys.argv[1:]
+    opts = {a.split("=")[0].lstrip("-"): int(a.split("=")[1]) for a in args if a.startswith("--")}
+    which = [a for a in args if not a.startswith("--")] or ["counts", "samplers", "scale"]
     for w in which:
-        {"counts": bench_counts, "samplers": bench_samplers, "scale": bench_scale}[w]()
+        if w == "scale":
+            bench_scale(**opts)
+        else:
+            {"counts": bench_counts, "samplers": bench_samplers}[w]()
         sys.stdout.flush()
