@@ -306,7 +306,3 @@ def write_scenario(
     write_json({"scenario": scenario.name, "seed": seed, "scale": scale, "window_days": scenario.window_days,
                 "note": "invented data for the demo and for simulations only"}, folder / "scenario.json")
     return paths
-
-
-def load_truth(folder: str | os.PathLike) -> pd.DataFrame:
-    return pd.read_csv(Path(folder) / "truth.csv")

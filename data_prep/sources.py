@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import difflib
 import os
-from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -517,7 +516,3 @@ def _absent_campaigns(con, table: Table, served: set, imp_label: str) -> None:
             file=table.label, column="campaign",
             rows=[BadRow(int(r.rn), repr(r.campaign)) for r in absent.head(5).itertuples()],
             fix="check the campaign names match the impressions exactly")
-
-
-def table_labels(inputs: Inputs) -> Mapping[str, str]:
-    return {k: t.label for k, t in inputs.tables.items()}

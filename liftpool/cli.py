@@ -124,8 +124,7 @@ def _cmd_prepare(args, console: Console) -> int:
         raise InputError(problem=f"missing {', '.join(missing)}",
                          fix="give a workspace (liftpool prepare WS) or the files and --out")
     out = Path(args.out)
-    if file_format(out) not in ("parquet", "csv"):  # raises for unknown extensions
-        return EXIT_INPUT
+    file_format(out)  # an unknown extension is an input error before any work
     rules = CountingRules(**_rules_from_args(args))
     res = prepare_counts(args.impressions, args.conversions, args.outcomes, users=args.users, spend=args.spend,
                          rules=rules, engine=args.engine, progress=console.step)

@@ -30,22 +30,6 @@ class Console:
         elapsed = time.monotonic() - self._t0
         print(f"[{elapsed:6.1f}s] {message}", file=self.stream, flush=True)
 
-    def bar(self, done: int, total: int, label: str) -> None:
-        """A progress bar on a terminal; a plain line every 10% otherwise."""
-        if self.quiet or total <= 0:
-            return
-        frac = min(1.0, done / total)
-        if self.tty:
-            width = 30
-            fill = int(round(frac * width))
-            end = "\n" if done >= total else ""
-            print(f"\r{label} [{'#' * fill}{'.' * (width - fill)}] {done}/{total}", end=end,
-                  file=self.stream, flush=True)
-        else:
-            step = max(1, total // 10)
-            if done % step == 0 or done >= total:
-                self.step(f"{label}: {done}/{total}")
-
     def detail(self, message: str) -> None:
         """Only with --verbose."""
         if self.verbose and not self.quiet:
