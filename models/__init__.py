@@ -8,6 +8,7 @@ from liftpool.models.design import CampaignFlags, Design, make_design
 from liftpool.models.diagnostics import Check, Diagnostics, check_convergence
 from liftpool.models.errors import FitError, NotConvergedError
 from liftpool.models.fit import FitResult, fit_counts, load_fit
+from liftpool.models.planning import Plan, PlanInputs, plan, plan_inputs_from_fit, simulate_plan
 from liftpool.models.pooling import PoolingPosterior, PoolingPrior, pool
 from liftpool.models.quick import mantel_haenszel, stratified_estimates
 from liftpool.models.settings import ModelSettings
@@ -25,6 +26,8 @@ __all__ = [
     "FitResult",
     "ModelSettings",
     "NotConvergedError",
+    "Plan",
+    "PlanInputs",
     "PoolingPosterior",
     "PoolingPrior",
     "check_convergence",
@@ -32,6 +35,9 @@ __all__ = [
     "load_fit",
     "make_design",
     "mantel_haenszel",
+    "plan",
+    "plan_inputs_from_fit",
     "pool",
+    "simulate_plan",
     "stratified_estimates",
 ]
