@@ -64,9 +64,9 @@ class Scenario:
     n_users: int
     outcome_base_rate: dict[str, float]  # baseline 14-day conversion probability at average traits
     browse_on_view: float = 0.9
-    browse_on_convert: float = 0.35
+    browse_on_convert: float = 0.5
     intent_on_serve: float = 1.6
-    intent_on_frequency: float = 0.45
+    intent_on_frequency: float = 0.2
     intent_on_convert: float = 1.0
     unmeasured_share: float = 0.05
     window_days: float = 14.0
@@ -146,7 +146,7 @@ def simulate(
     n = int(round(scenario.n_users * scale))
     window = scenario.window_days * DAY
     browse = rng.normal(size=n)
-    device = np.where(browse + rng.normal(0, 1.2, n) > 0.4, "desktop",
+    device = np.where(browse + rng.normal(0, 3.0, n) > 0.4, "desktop",
                       np.where(rng.random(n) < 0.8, "mobile", "tablet"))
     dev_eff = np.select([device == "desktop", device == "mobile"], [0.3, -0.2], 0.0)
     region = rng.choice(np.array(["north", "south", "east", "west"]), size=n)

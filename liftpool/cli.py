@@ -103,11 +103,12 @@ def build_parser() -> argparse.ArgumentParser:
 
 def _register_later(sub) -> None:
     """Commands of the model and report layers."""
-    from liftpool import cli_fit, cli_plan, cli_report, cli_ws
+    from liftpool import cli_fit, cli_plan, cli_report, cli_screen, cli_ws
 
     cli_fit.register(sub, _common)
     cli_report.register(sub, _common)
     cli_plan.register(sub, _common)
+    cli_screen.register(sub, _common, _rules_args, _rules_from_args)
     cli_ws.register(sub, _common, _rules_args, _rules_from_args)
 
 

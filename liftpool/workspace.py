@@ -367,7 +367,32 @@ class Workspace:
         prov = {"workspace": str(self.path.resolve()), "fit id": fid, "prepared": str(manifest.get("prepared"))}
         return write_report(self.path / "fits" / fid, out, spend=spend, prep_summary=self.prep_summary_of(manifest),
                             currency=rep.get("currency", "USD"), level=rep.get("level"),
-                            title=rep.get("title", "Display advertising lift report"), provenance=prov)
+                            title=rep.get("title", "Display advertising lift report"), provenance=prov,
+                            screen=self.latest_screen())
+
+    def screen(self, candidates: list[str] | None = None, progress: Callable[[str], None] | None = None) -> Path:
+        """Screen the candidate covariates on this workspace's inputs into ``screens/NNN/`` (never over one)."""
+        from liftpool.screen import screen_inputs
+
+        inp = self._inputs()
+        result = screen_inputs(inp["impressions"], inp["conversions"], inp["outcomes"], users=inp["users"],
+                               rules=self.rules, candidates=candidates, settings=self.settings(), progress=progress)
+        root = self.path / "screens"
+        root.mkdir(exist_ok=True)
+        n = len([p for p in root.iterdir() if p.is_dir() and p.name.isdigit()]) + 1
+        out = root / f"{n:03d}"
+        while out.exists():
+            n += 1
+            out = root / f"{n:03d}"
+        return result.save(out)
+
+    def latest_screen(self):
+        """The newest screen of this workspace (a ScreenResult), or None."""
+        from liftpool.screen import load_screen
+
+        root = self.path / "screens"
+        done = sorted(p for p in root.iterdir() if p.is_dir() and p.name.isdigit()) if root.is_dir() else []
+        return load_screen(done[-1]) if done else None
 
     def prep_summary_of(self, manifest: dict) -> PrepSummary | None:
         gen = manifest.get("prepared")

@@ -160,7 +160,8 @@ def _df_table(df: pd.DataFrame, fmt: dict | None = None) -> str:
 
 
 def render_html(t: ReportTables, figures: dict[str, bytes], paragraphs: list[tuple[str, str]], portfolio: str,
-                converged: bool, mode: str, flags: dict, title: str, prep_totals: dict | None) -> str:
+                converged: bool, mode: str, flags: dict, title: str, prep_totals: dict | None,
+                screen=None) -> str:
     L = int(round(t.level * 100))
     parts = [f"<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\"><title>{esc(title)}</title>"
              f"<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\"><style>{CSS}</style></head><body>"]
@@ -196,6 +197,9 @@ def render_html(t: ReportTables, figures: dict[str, bytes], paragraphs: list[tup
         "shrinkage.png": "Each campaign alone against the pooled estimate; small campaigns move towards the portfolio.",
         "naive_to_corrected.png": "How each campaign's lift falls from the naive comparison to the bias-corrected one.",
         "return_on_ad_spend.png": "Posterior of return on ad spend (incremental revenue divided by spend).",
+        "covariate_balance.png": "Balance of each candidate covariate between seen and unseen users, before "
+                                 "(open) and after (filled) stratifying on the screen's suggested cells; "
+                                 "dashed line: the 0.1 flag.",
     }
     for name, png in figures.items():
         parts.append(_img(name, png, captions.get(name, name)))
@@ -219,6 +223,19 @@ def render_html(t: ReportTables, figures: dict[str, bytes], paragraphs: list[tup
                      "(about {L}% expected; far fewer would mean the model does not fit the data).</p>"
                      .replace("{L}", str(L)))
         parts.append(_df_table(t.predictive))
+    if screen is not None:
+        from liftpool.reports.screening import appendix_table
+
+        ranking, balance = appendix_table(screen)
+        parts.append("<h3>Confounder screen</h3><p>For each candidate covariate: the placebo bias (the quick "
+                     "mode's pooled placebo effect, log odds) without cells and with cells on it alone, its "
+                     "balance between seen and unseen users (standardized mean difference, flagged above 0.1, "
+                     "Austin 2009) and its association with the placebo outcomes. Suggested cells: "
+                     f"{esc(', '.join(screen.suggested) or '(none)')}.</p>")
+        parts.append(_df_table(ranking))
+        parts.append("<p>Balance before and after stratifying on the suggested cells (users-weighted mean "
+                     "|SMD| over campaigns):</p>")
+        parts.append(_df_table(balance))
     parts.append("<h3>Model settings</h3>")
     parts.append(_df_table(t.settings))
     parts.append("<h3>Provenance</h3>")

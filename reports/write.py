@@ -43,6 +43,7 @@ def write_report(
     level: float | None = None,
     title: str = "Display advertising lift report",
     provenance: dict | None = None,
+    screen=None,
 ) -> Path:
     """Write the report folder, atomically; it must not exist yet (or be empty).
 
@@ -59,6 +60,8 @@ def write_report(
     title : str
     provenance : dict, optional
         Extra provenance rows (e.g. input file hashes).
+    screen : ScreenResult, optional
+        A confounder screen: its ranking and balance tables go into the appendix and the XLSX.
 
     Returns
     -------
@@ -80,15 +83,23 @@ def write_report(
     tables: ReportTables = build_tables(fit, spend=spend, prep_campaigns=None if prep_summary is None
                                         else prep_summary.campaigns, currency=currency, level=level, provenance=prov)
     figures = make_figures(tables)
+    if screen is not None:
+        from liftpool.reports.screening import balance_figure
+
+        figures["covariate_balance.png"] = balance_figure(screen)
     flags = fit.flags.to_dict()
     totals = None
     if prep_summary is not None:
         totals = {k: v for k, v in prep_summary.totals.items() if not isinstance(v, dict)}
     html = render_html(tables, figures, campaign_paragraphs(tables, flags), portfolio_paragraph(tables),
-                       fit.converged, fit.mode, flags, title, totals)
+                       fit.converged, fit.mode, flags, title, totals, screen=screen)
     with atomic_folder(out) as tmp:
         (tmp / "report.html").write_text(html, encoding="utf-8")
         named = tables.named()
+        if screen is not None:
+            from liftpool.reports.screening import appendix_table
+
+            named["screen_ranking"], named["screen_balance"] = appendix_table(screen)
         write_xlsx(named, tmp / "tables.xlsx")
         for name, df in named.items():
             df.to_csv(tmp / f"{name}.csv", index=False)
