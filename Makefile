@@ -5,6 +5,7 @@ PYTHON ?= python3
 VENV   := .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed-stamp
+TSTAMP := $(VENV)/.installed-test-stamp
 
 .PHONY: demo test lint bench clean
 
@@ -18,7 +19,13 @@ demo: $(STAMP)
 	@rm -rf demo-workspace
 	$(BIN)/liftpool demo demo-workspace
 
-test: $(STAMP)
+# The tests also run the Spark engine in local mode: they install the spark extra (Java is needed;
+# without it the Spark tests skip with the reason, except in CI, which installs Java).
+$(TSTAMP): $(STAMP)
+	$(BIN)/python -m pip install --quiet --disable-pip-version-check -e ".[dev,spark]"
+	@touch $(TSTAMP)
+
+test: $(TSTAMP)
 	$(BIN)/python -m pytest
 
 lint: $(STAMP)

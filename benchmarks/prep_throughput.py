@@ -5,10 +5,12 @@ Prints rows per second and peak memory for, measured in the same run:
   * DuckDB's bare scan of the same columns (the floor: reading the file once),
   * a straightforward pandas implementation (read the files into pandas, then
     liftpool's pandas engine),
+  * with ``--with-spark``: liftpool's Spark engine in local mode (``local[2]``, the same SQL),
+    timed from session start and without it (the JVM's peak memory is reported separately),
 and the ratios between them.  Each run is a separate process so peak memory is
 its own.  Results go in docs/performance.md.
 
-Usage: python benchmarks/prep_throughput.py [--rows 20000000] [--skip-pandas]
+Usage: python benchmarks/prep_throughput.py [--rows 20000000] [--skip-pandas] [--with-spark]
 """
 
 from __future__ import annotations
@@ -99,6 +101,20 @@ def _child(mode: str, info: dict) -> None:
         from liftpool.data_prep import prepare_counts
 
         prepare_counts(info["impressions"], info["conversions"], info["outcomes"])
+    elif mode == "spark":
+        from liftpool.data_prep import prepare_counts
+        from liftpool.data_prep.engine_spark import spark_session
+
+        spark = spark_session("local[2]", conf={"spark.driver.memory": "6g"})
+        t1 = time.perf_counter()
+        prepare_counts(info["impressions"], info["conversions"], info["outcomes"], engine="spark", spark=spark)
+        work = time.perf_counter() - t1
+        spark.stop()
+        secs = time.perf_counter() - t0
+        jvm = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
+        print(json.dumps({"mode": mode, "seconds": secs, "work_seconds": work, "jvm_peak_mb": jvm,
+                          "peak_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}))
+        return
     elif mode == "pandas":
         import pandas as pd
 
@@ -124,6 +140,7 @@ def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--rows", type=int, default=20_000_000)
     ap.add_argument("--skip-pandas", action="store_true")
+    ap.add_argument("--with-spark", action="store_true", help="also time the Spark engine (local[2])")
     ap.add_argument("--worst-case", action="store_true", help="one impression per (user, campaign)")
     ap.add_argument("--child")
     ap.add_argument("--info")
@@ -134,14 +151,20 @@ def main() -> None:
     info = make_data(a.rows, DATA)
     print(f"impressions: {a.rows:,} rows, {info['bytes'] / 1e6:,.0f} MB Parquet; cores: {os.cpu_count()}"
           f"{' (worst case: one impression per user and campaign)' if WORST else ''}")
-    modes = ["scan", "liftpool"] + ([] if a.skip_pandas else ["pandas"])
+    modes = ["scan", "liftpool"] + ([] if a.skip_pandas else ["pandas"]) + (["spark"] if a.with_spark else [])
     res = {m: run(m, info) for m in modes}
     for m, r in res.items():
-        print(f"{m:9s} {r['seconds']:8.2f} s  {a.rows / r['seconds'] / 1e6:7.2f} M rows/s  peak {r['peak_mb']:8,.0f} MB")
+        extra = (f"  (JVM peak {r['jvm_peak_mb']:,.0f} MB; {r['work_seconds']:.2f} s without session start)"
+                 if m == "spark" else "")
+        print(f"{m:9s} {r['seconds']:8.2f} s  {a.rows / r['seconds'] / 1e6:7.2f} M rows/s  "
+              f"peak {r['peak_mb']:8,.0f} MB{extra}")
     lp = res["liftpool"]["seconds"]
     print(f"liftpool / bare scan time: {lp / res['scan']['seconds']:.2f}x")
     if "pandas" in res:
         print(f"pandas / liftpool time:    {res['pandas']['seconds'] / lp:.1f}x")
+    if "spark" in res:
+        print(f"spark local[2] / duckdb:   {res['spark']['seconds'] / lp:.1f}x "
+              f"({res['spark']['work_seconds'] / lp:.1f}x without Spark's start-up)")
 
 
 if __name__ == "__main__":

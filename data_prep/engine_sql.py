@@ -52,9 +52,9 @@ def build_exposures(inputs: Inputs, rules: CountingRules, table: str = EXPOSURES
     inputs.con.execute(f"""
         CREATE OR REPLACE TABLE {table} AS
         SELECT user_id, campaign, first_served, n_imps, n_measured, n_viewable,
-               CASE WHEN sum(n_measured) OVER w - n_measured > 0
-                    THEN CAST(sum(n_viewable) OVER w - n_viewable AS DOUBLE)
-                         / CAST(sum(n_measured) OVER w - n_measured AS DOUBLE) END AS view_history
+               CASE WHEN (sum(n_measured) OVER w) - n_measured > 0
+                    THEN CAST((sum(n_viewable) OVER w) - n_viewable AS DOUBLE)
+                         / CAST((sum(n_measured) OVER w) - n_measured AS DOUBLE) END AS view_history
         FROM _agg
         WINDOW w AS (PARTITION BY user_id)
     """).fetchall()

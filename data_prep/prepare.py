@@ -17,7 +17,7 @@ from liftpool.data_prep.sources import Inputs, open_inputs
 
 __all__ = ["prepare_counts", "PrepResult", "ENGINES"]
 
-ENGINES = ("duckdb", "pandas")
+ENGINES = ("duckdb", "pandas", "spark")
 
 
 @dataclass
@@ -56,6 +56,7 @@ def prepare_counts(
     progress: Callable[[str], None] | None = None,
     inputs: Inputs | None = None,
     cache=None,
+    spark=None,
 ) -> PrepResult:
     """Turn impression and conversion logs into seen/unseen counts by campaign, cell and outcome.
 
@@ -67,9 +68,11 @@ def prepare_counts(
         User covariates; campaign spend and value per conversion.
     rules : CountingRules, optional
         Counting rules; the documented defaults when omitted.
-    engine : {"duckdb", "pandas"}
+    engine : {"duckdb", "pandas", "spark"}
         ``duckdb`` works out of core on files of any size; ``pandas`` loads the
-        typed tables into memory (for DataFrames and as a cross-check).
+        typed tables into memory (for DataFrames and as a cross-check); ``spark``
+        runs the DuckDB engine's SQL on Apache Spark (``liftpool[spark]``), reading
+        any path Spark can read.
     progress : callable, optional
         Called with a short text before each step.
     inputs : Inputs, optional
@@ -78,6 +81,8 @@ def prepare_counts(
         A new folder in which to keep the exposure cells and raw counts, so that
         added placebo outcomes can be counted later without reading the impressions
         again (DuckDB engine only).  It holds user identifiers: keep it private.
+    spark : pyspark.sql.SparkSession, optional
+        The session for ``engine="spark"`` (default: the active one, or a new local one).
 
     Returns
     -------
@@ -94,9 +99,18 @@ def prepare_counts(
     say = progress or (lambda _msg: None)
     user_covs = tuple(c for c in rules.covariates if c not in BUILTIN_COVARIATES)
     if inputs is None:
-        say("reading and checking inputs")
-        inputs = open_inputs(impressions, conversions, outcomes, users=users, spend=spend, covariates=user_covs)
-    if engine == "duckdb":
+        say("reading and checking inputs" + (" (Spark)" if engine == "spark" else ""))
+        con = None
+        if engine == "spark":
+            from liftpool.data_prep.engine_spark import SparkConnection, spark_session
+
+            con = SparkConnection(spark if spark is not None else spark_session())
+        inputs = open_inputs(impressions, conversions, outcomes, users=users, spend=spend, covariates=user_covs,
+                             con=con)
+    if engine in ("duckdb", "spark"):
+        if engine == "spark" and cache is not None:
+            raise ConfigError(problem="the exposure cache is kept by the DuckDB engine only",
+                              fix="prepare with --engine duckdb in a workspace, or without a cache")
         say("building exposures (one pass over the impressions)")
         build_exposures(inputs, rules)
         say("counting conversions by campaign, cell and arm")

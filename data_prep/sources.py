@@ -140,7 +140,50 @@ class Inputs:
         return kind in self.tables
 
 
+def _load_spark(con, kind: str, source) -> Table:
+    """The Spark twin of :func:`_load`: the same checks, Spark's readers (any path Spark can read)."""
+    from liftpool.data_prep.engine_spark import parquet_paths
+
+    raw = f"raw_{kind}"
+    if isinstance(source, pd.DataFrame):
+        label = f"{kind} table (DataFrame)"
+        if len(source.columns) == 0:
+            raise InputError(problem="the table has no columns", file=label,
+                             fix=f"pass a DataFrame with the {kind} columns")
+        con.register(raw, source)
+        sdf = con.spark.table(raw)
+        from liftpool.data_prep.engine_spark import _duck_type
+
+        types = {f.name: _duck_type(f.dataType.simpleString()) for f in sdf.schema.fields}
+        n_rows = int(sdf.count())
+    else:
+        paths = parquet_paths(source)
+        label = " + ".join(str(x) for x in (source if isinstance(source, (list, tuple)) else [source]))
+        fmts = {file_format(x) for x in paths}
+        if len(fmts) > 1:
+            raise InputError(problem="the files mix CSV and Parquet", file=label,
+                             fix=f"give all {kind} files in one format")
+        for x in paths:
+            if "://" not in x and not Path(x).exists():
+                raise InputError(problem="file not found", file=x, fix="check the path and the file name")
+        if fmts.pop() == "csv":
+            sdf = con.spark.read.option("header", "true").csv(paths)  # every column text, as DuckDB's all_varchar
+            sdf.createOrReplaceTempView(raw)
+            from liftpool.data_prep.engine_spark import _duck_type
+
+            types = {f.name: _duck_type(f.dataType.simpleString()) for f in sdf.schema.fields}
+            n_rows = int(sdf.count())
+        else:
+            types, n_rows = con.load_parquet(raw, paths, label)
+    if n_rows == 0:
+        raise InputError(problem="the table has a header but no data rows", file=label,
+                         fix=f"export the {kind} table again with its rows")
+    return Table(kind=kind, label=label, raw=raw, types=types, n_rows=int(n_rows))
+
+
 def _load(con: duckdb.DuckDBPyConnection, kind: str, source) -> Table:
+    if getattr(con, "engine", None) == "spark":
+        return _load_spark(con, kind, source)
     raw = f"raw_{kind}"
     if isinstance(source, pd.DataFrame):
         label = f"{kind} table (DataFrame)"

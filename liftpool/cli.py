@@ -73,8 +73,11 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--spend", help="optional spend file: campaign, spend, value_per_conversion (checked here)")
     p.add_argument("--out", help="counts file to write (.parquet or .csv); the summary is "
                    "written beside it as <name>.summary.json")
-    p.add_argument("--engine", default="duckdb", choices=["duckdb", "pandas"],
-                   help="counting engine (default duckdb: out of core)")
+    p.add_argument("--engine", default="duckdb", choices=["duckdb", "pandas", "spark"],
+                   help="counting engine (default duckdb: out of core; spark: the same SQL on Apache Spark, "
+                        "needs liftpool[spark], docs/spark.md)")
+    p.add_argument("--spark-master", help="Spark master for --engine spark, e.g. local[4] (default: the one "
+                   "spark-submit gives, else local)")
     _rules_args(p)
     _common(p)
     p.set_defaults(func=_cmd_prepare)
@@ -128,8 +131,14 @@ def _cmd_prepare(args, console: Console) -> int:
     out = Path(args.out)
     file_format(out)  # an unknown extension is an input error before any work
     rules = CountingRules(**_rules_from_args(args))
+    spark = None
+    if args.engine == "spark":
+        from liftpool.data_prep.engine_spark import spark_session
+
+        console.step("starting Spark" + (f" ({args.spark_master})" if args.spark_master else ""))
+        spark = spark_session(args.spark_master)
     res = prepare_counts(args.impressions, args.conversions, args.outcomes, users=args.users, spend=args.spend,
-                         rules=rules, engine=args.engine, progress=console.step)
+                         rules=rules, engine=args.engine, progress=console.step, spark=spark)
     res.summary.totals["input_sha256"] = input_hashes(args)
     write_table(res.counts, out)
     summary_path = out.with_name(out.name.split(".")[0] + ".summary.json")
@@ -163,8 +172,12 @@ def _prepare_workspace(args, console: Console) -> int:
 def input_hashes(args) -> dict:
     from liftpool.data_prep.io import file_sha256
 
-    return {k: file_sha256(getattr(args, k)) for k in ("impressions", "conversions", "outcomes", "users", "spend")
-            if getattr(args, k, None)}
+    out = {}
+    for k in ("impressions", "conversions", "outcomes", "users", "spend"):
+        v = getattr(args, k, None)
+        if v and "://" not in str(v) and Path(v).is_file():  # remote or folder inputs (Spark) are not hashed
+            out[k] = file_sha256(v)
+    return out
 
 
 def _cmd_simulate(args, console: Console) -> int:

@@ -18,6 +18,9 @@ def register(sub, common, rules_args, rules_from_args) -> None:
     p.add_argument("--spend")
     rules_args(p)
     p.add_argument("--currency", help="ISO currency code for the report (default USD)")
+    p.add_argument("--engine", choices=["duckdb", "spark"],
+                   help="counting engine of 'prepare WS' (default duckdb; spark needs liftpool[spark])")
+    p.add_argument("--spark-master", help="Spark master for --engine spark, e.g. local[2] (default: Spark's own)")
     common(p)
     p.set_defaults(func=cmd_init, _rules=rules_from_args)
 
@@ -54,7 +57,9 @@ def cmd_init(args, console) -> int:
     counting = args._rules(args)
     ws = Workspace.init(args.workspace, args.impressions, args.conversions, args.outcomes, users=args.users,
                         spend=args.spend, counting=counting,
-                        report={"currency": args.currency} if args.currency else None)
+                        report={"currency": args.currency} if args.currency else None,
+                        prepare={k: v for k, v in (("engine", args.engine), ("spark_master", args.spark_master))
+                                 if v} or None)
     console.out(f"workspace created: {ws.path} (settings in {ws.path / 'liftpool.toml'})")
     console.out(f"next: liftpool check {ws.path}; liftpool prepare {ws.path}; liftpool fit {ws.path}")
     return 0

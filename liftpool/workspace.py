@@ -2,7 +2,7 @@
 
 Layout::
 
-    WS/liftpool.toml            inputs, counting rules, model and report settings (validated)
+    WS/liftpool.toml            inputs, prepare engine, counting rules, model and report settings (validated)
     WS/prepared/CURRENT         name of the current preparation (switched atomically)
     WS/prepared/<gen>/          counts.parquet, counts.summary.json, cache/ (exposure cells: private)
     WS/inputs/                  outcome files added with add-placebo
@@ -37,7 +37,9 @@ from liftpool.models import FitResult, ModelSettings, fit_counts, load_fit
 __all__ = ["Workspace", "WorkspaceBusyError", "CONFIG_NAME", "REPORT_KEYS", "INPUT_KEYS"]
 
 CONFIG_NAME = "liftpool.toml"
-SECTIONS = ("inputs", "counting", "model", "report")
+SECTIONS = ("inputs", "prepare", "counting", "model", "report")
+PREPARE_KEYS = ("engine", "spark_master")
+PREPARE_ENGINES = ("duckdb", "spark")
 INPUT_KEYS = ("impressions", "conversions", "outcomes", "users", "spend")
 REPORT_KEYS = ("currency", "level", "title")
 
@@ -67,7 +69,7 @@ class Workspace:
     @classmethod
     def init(cls, path, impressions, conversions, outcomes, users=None, spend=None, covariates=None,
              window_days=None, counting: dict | None = None, model: dict | None = None,
-             report: dict | None = None) -> Workspace:
+             report: dict | None = None, prepare: dict | None = None) -> Workspace:
         """Create a workspace that points at the input files (checked for existence, not yet validated)."""
         path = Path(path)
         if (path / CONFIG_NAME).exists():
@@ -91,6 +93,8 @@ class Workspace:
             counting["window_days"] = float(window_days)
         config = {"inputs": cfg_inputs, "counting": counting, "model": dict(model or {}),
                   "report": {"currency": "USD", "level": 0.9, **(report or {})}}
+        if prepare:
+            config["prepare"] = dict(prepare)
         ws = cls(path, cls._validate(config, str(path / CONFIG_NAME)))
         path.mkdir(parents=True, exist_ok=True)
         for sub in ("prepared", "fits", "reports", "inputs"):
@@ -129,6 +133,14 @@ class Workspace:
         except ConfigError as exc:
             exc.file = where
             raise ConfigError(problem=exc.problem, file=where, fix=exc.fix) from None
+        prep = config.get("prepare", {})
+        bad = set(prep) - set(PREPARE_KEYS)
+        if bad:
+            raise ConfigError.unknown_keys({f"prepare.{k}" for k in bad}, {f"prepare.{k}" for k in PREPARE_KEYS},
+                                           where)
+        if prep.get("engine", "duckdb") not in PREPARE_ENGINES:
+            err = ConfigError.invalid_choice("prepare.engine", prep.get("engine"), PREPARE_ENGINES)
+            raise ConfigError(problem=err.problem, file=where, fix=err.fix)
         rep = config.get("report", {})
         bad = set(rep) - set(REPORT_KEYS)
         if bad:
@@ -182,8 +194,8 @@ class Workspace:
         return ModelSettings.from_mapping({**self.config.get("model", {}),
                                            **{k: v for k, v in overrides.items() if v is not None}})
 
-    def _inputs(self) -> dict:
-        i = self.config["inputs"]
+    def _inputs(self, config: dict | None = None) -> dict:
+        i = (config or self.config)["inputs"]
         outcomes = pd.concat([read_table(p) for p in _as_list(i["outcomes"])], ignore_index=True)
         return {"impressions": i["impressions"], "conversions": _as_list(i["conversions"]),
                 "outcomes": outcomes, "users": i.get("users"), "spend": i.get("spend")}
@@ -239,20 +251,37 @@ class Workspace:
             shutil.rmtree(old / "cache", ignore_errors=True)  # old counts stay for history
         return self.path / "prepared" / name
 
-    def prepare(self, progress: Callable[[str], None] | None = None) -> PrepSummary:
-        """Logs to counts (and the exposure cache), as a new preparation."""
-        inp = self._inputs()
+    @property
+    def engine(self) -> str:
+        """The counting engine of ``prepare`` (``[prepare] engine``: duckdb by default, or spark)."""
+        return self.config.get("prepare", {}).get("engine", "duckdb")
+
+    def _engine_kwargs(self, tmp: Path) -> dict:
+        if self.engine == "spark":
+            from liftpool.data_prep.engine_spark import spark_session
+
+            master = self.config.get("prepare", {}).get("spark_master")
+            return {"engine": "spark", "spark": spark_session(master)}
+        return {"engine": "duckdb", "cache": tmp / "cache"}
+
+    def prepare(self, progress: Callable[[str], None] | None = None, config: dict | None = None) -> PrepSummary:
+        """Logs to counts (and, with DuckDB, the exposure cache), as a new preparation."""
+        inp = self._inputs(config)
         holder = {}
 
         def build(tmp: Path) -> None:
             res = prepare_counts(inp["impressions"], inp["conversions"], inp["outcomes"], users=inp["users"],
-                                 spend=inp["spend"], rules=self.rules, progress=progress, cache=tmp / "cache")
-            res.summary.totals["input_sha256"] = self._hashes()
+                                 spend=inp["spend"], rules=self.rules, progress=progress, **self._engine_kwargs(tmp))
+            res.summary.totals["input_sha256"] = self._hashes(config)
             res.counts.to_parquet(tmp / "counts.parquet", index=False)
             write_json(res.summary.to_dict(), tmp / "counts.summary.json")
             holder["summary"] = res.summary
 
-        self._switch(self._build_generation(build))
+        name = self._build_generation(build)
+        if config is not None:
+            self.config = config
+            self._write_config()
+        self._switch(name)
         return holder["summary"]
 
     def _hashes(self, config: dict | None = None) -> dict:
@@ -269,6 +298,8 @@ class Workspace:
         from liftpool.data_prep.incremental import add_outcomes, check_new_outcomes
 
         gen = self.current()
+        if self.engine == "spark":
+            return self._add_placebo_recount(outcomes_file, conversions, progress)
         if gen is None or not (gen / "cache").is_dir():
             raise InputError(problem="the workspace has no current preparation with an exposure cache",
                              file=str(self.path), fix=f"run 'liftpool prepare {self.path}' first")
@@ -305,6 +336,28 @@ class Workspace:
         self._write_config()
         self._switch(name)
         return holder["summary"], holder["rows"]
+
+    def _add_placebo_recount(self, outcomes_file, conversions, progress) -> tuple[PrepSummary, int]:
+        """``add_placebo`` for a Spark workspace: no local exposure cache, so everything is recounted."""
+        from liftpool.data_prep.incremental import check_new_outcomes
+
+        src = Path(outcomes_file)
+        if not src.is_file():
+            raise InputError(problem="file not found", file=str(src), fix="check the path of the new outcomes file")
+        if conversions and not Path(conversions).is_file():
+            raise InputError(problem="file not found", file=str(conversions), fix="check the conversions path")
+        inp = self._inputs()
+        new = check_new_outcomes(inp["outcomes"], read_table(src), str(src))
+        n = len(list((self.path / "inputs").glob("added_outcomes_*.csv"))) + 1
+        kept = self.path / "inputs" / f"added_outcomes_{n:03d}.csv"
+        write_text(new.to_csv(index=False), kept)
+        new_config = json.loads(json.dumps(self.config))
+        new_config["inputs"]["outcomes"] = _as_list(self.config["inputs"]["outcomes"]) + [str(kept.resolve())]
+        if conversions:
+            new_config["inputs"]["conversions"] = inp["conversions"] + [str(Path(conversions).resolve())]
+        (progress or (lambda _m: None))("Spark workspace: recounting every outcome on Spark")
+        summary = self.prepare(progress=progress, config=new_config)
+        return summary, int(summary.totals.get("impression_rows", 0))
 
     def fit(self, quick: bool = False, progress: Callable[[str], None] | None = None, progressbar: bool = False,
             groups: dict | None = None, **overrides) -> tuple[str, FitResult]:

@@ -28,3 +28,33 @@ def write_csvs(folder, **tables: pd.DataFrame) -> dict:
         df.to_csv(p, index=False)
         paths[name] = p
     return paths
+
+
+def _spark_ready() -> tuple[bool, str]:
+    import shutil
+
+    from liftpool.data_prep.engine_spark import spark_available
+
+    if not spark_available():
+        return False, "pyspark/sqlglot not installed (pip install 'liftpool[spark]')"
+    if shutil.which("java") is None:
+        return False, "no Java runtime (apt install default-jre-headless)"
+    return True, ""
+
+
+SPARK_READY, SPARK_REASON = _spark_ready()
+if not SPARK_READY and os.environ.get("LIFTPOOL_REQUIRE_SPARK") == "1":
+    raise RuntimeError(f"LIFTPOOL_REQUIRE_SPARK=1 but Spark cannot run: {SPARK_REASON}")
+#: Mark for tests that run Spark in local mode (they skip, with the reason, where Spark cannot run;
+#: CI sets LIFTPOOL_REQUIRE_SPARK=1 so that they never skip there).
+needs_spark = pytest.mark.skipif(not SPARK_READY, reason=SPARK_REASON)
+_SPARK = {}
+
+
+def spark_for_tests():
+    """One local[2] Spark session for the whole test run."""
+    if "s" not in _SPARK:
+        from liftpool.data_prep.engine_spark import spark_session
+
+        _SPARK["s"] = spark_session("local[2]", app_name="liftpool-tests")
+    return _SPARK["s"]

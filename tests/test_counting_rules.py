@@ -10,6 +10,7 @@ import pandas as pd
 import pytest
 
 from liftpool.data_prep import CountingRules, prepare_counts
+from tests.conftest import needs_spark, spark_for_tests
 
 T0 = pd.Timestamp("2026-03-01T00:00:00Z")
 
@@ -86,10 +87,16 @@ def measurement_version(imp: pd.DataFrame) -> pd.DataFrame:
 
 
 def run(engine, imp=IMPRESSIONS, rules=NO_CELLS, **kw):
+    if engine == "spark":
+        kw["spark"] = spark_for_tests()
     return prepare_counts(imp, CONVERSIONS, OUTCOMES, rules=rules, engine=engine, **kw)
 
 
-@pytest.mark.parametrize("engine", ["duckdb", "pandas"])
+#: every engine: the Spark engine runs the DuckDB engine's SQL (transpiled), so it must give the hand counts too
+ENGINES = ["duckdb", "pandas", pytest.param("spark", marks=needs_spark)]
+
+
+@pytest.mark.parametrize("engine", ENGINES)
 @pytest.mark.parametrize("form", ["viewable", "measurement"])
 def test_hand_counts(engine, form):
     imp = IMPRESSIONS if form == "viewable" else measurement_version(IMPRESSIONS)
@@ -97,7 +104,7 @@ def test_hand_counts(engine, form):
     assert res.counts.values.tolist() == [list(r) for r in EXPECTED]
 
 
-@pytest.mark.parametrize("engine", ["duckdb", "pandas"])
+@pytest.mark.parametrize("engine", ENGINES)
 def test_hand_summary(engine):
     s = run(engine).summary
     c = s.campaigns.set_index("campaign")
@@ -118,7 +125,7 @@ def test_hand_summary(engine):
     assert s.totals["users_unmeasured_only"] == 1
 
 
-@pytest.mark.parametrize("engine", ["duckdb", "pandas"])
+@pytest.mark.parametrize("engine", ENGINES)
 def test_builtin_covariate_cells(engine):
     # frequency and view history (hand):
     # A: u1 freq 2, history unknown (no other campaign), seen;  u2 freq 2, unknown, unseen;
@@ -137,7 +144,7 @@ def test_builtin_covariate_cells(engine):
     assert c.loc["A", "users_one_arm_cells"] == 1 and c.loc["B", "users_one_arm_cells"] == 1
 
 
-@pytest.mark.parametrize("engine", ["duckdb", "pandas"])
+@pytest.mark.parametrize("engine", ENGINES)
 def test_small_cells_merge_and_drop(engine):
     # With min_cell_users=2 both kept cells above (1 seen, 1 unseen) are small.
     merged = run(engine, rules=CountingRules(min_cell_users=2))
@@ -148,7 +155,7 @@ def test_small_cells_merge_and_drop(engine):
     assert dropped.summary.totals["users_small_cells_dropped"] == 4
 
 
-@pytest.mark.parametrize("engine", ["duckdb", "pandas"])
+@pytest.mark.parametrize("engine", ENGINES)
 def test_unexposed_arm(engine):
     # users table u1..u8.  A served u1..u4 (u3 unmeasured but served): unexposed {u5..u8} = 4.
     #   A's first serve T0, window (T0, T0+14d]: u7 buy at T0+5d -> 1; u6's visit is late -> 0.
