@@ -432,9 +432,9 @@ def plan_inputs_from_fit(fit, campaign: str | None = None, **overrides) -> PlanI
     def mean(name, default=None):
         return float(post[name].mean()) if name in post else default
 
-    ns = cd["users_seen"].to_numpy(float)
-    nu = cd["users_unseen"].to_numpy(float)
-    xu = cd["target_conversions_unseen"].to_numpy(float)
+    ns = cd["users_seen"].to_numpy().astype(float)
+    nu = cd["users_unseen"].to_numpy().astype(float)
+    xu = cd["target_conversions_unseen"].to_numpy().astype(float)
     camps = [str(c) for c in cd["campaign"].values]
     if campaign is not None:
         if campaign not in camps:

@@ -174,3 +174,35 @@ def test_plan_cli_writes_folder_and_reuses_a_fit(tmp_path):
     assert (out / "width_vs_users.png").read_bytes()[:4] == b"\x89PNG"
     assert main(["plan", "--users", "300000", "--out", str(out), "-q"]) == 2  # never written over
     assert main(["plan", "--seen-share", "2", "-q"]) == 2
+
+
+def test_plan_reuses_a_fit_and_the_workspace_command(small_scenario, tmp_path):
+    from liftpool.cli import main
+    from liftpool.data_prep import prepare_counts
+    from liftpool.models import ModelSettings, fit_counts, plan_inputs_from_fit
+
+    p = small_scenario
+    counts = prepare_counts(p["impressions"], p["conversions"], p["outcomes"], users=p["users"]).counts
+    fit = fit_counts(counts, ModelSettings(seed=3), quick=True)
+    inp = plan_inputs_from_fit(fit, users=1e6)
+    post = fit.idata.posterior
+    # the quick mode has one bias distribution: its spread becomes the residual spread
+    assert inp.residual_sd == pytest.approx(float(post["bias_sd"].mean()), rel=1e-12)
+    assert inp.bias_sd == 0 and inp.campaigns == fit.idata.posterior.sizes["campaign"]
+    assert inp.lift_sd == pytest.approx(float(post["lift_sd"].mean()), rel=1e-12)
+    assert inp.users == 1e6 and inp.source == "quick fit posterior means"
+    camp = str(post.campaign.values[0])
+    one = plan_inputs_from_fit(fit, campaign=camp)
+    cd = fit.idata.constant_data
+    assert one.users == float(cd["users_seen"].sel(campaign=camp) + cd["users_unseen"].sel(campaign=camp))
+
+    from liftpool.workspace import Workspace
+
+    ws = Workspace.init(tmp_path / "ws", p["impressions"], [p["conversions"]], [p["outcomes"]], users=p["users"])
+    assert main(["prepare", str(ws.path), "-q"]) == 0
+    assert main(["fit", str(ws.path), "--quick", "-q"]) == 0
+    out = tmp_path / "plan"
+    assert main(["plan", str(ws.path), "--campaign", camp, "--out", str(out), "-q"]) == 0
+    doc = json.loads((out / "plan.json").read_text())
+    assert doc["inputs"]["source"] == "quick fit posterior means"
+    assert main(["plan", str(ws.path), "--campaign", "no-such-campaign", "-q"]) == 2
