@@ -64,7 +64,7 @@ class Scenario:
     n_users: int
     outcome_base_rate: dict[str, float]  # baseline 14-day conversion probability at average traits
     browse_on_view: float = 0.9
-    browse_on_convert: float = 0.5
+    browse_on_convert: float = 0.35
     intent_on_serve: float = 1.6
     intent_on_frequency: float = 0.2
     intent_on_convert: float = 1.0
