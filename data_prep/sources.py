@@ -74,6 +74,10 @@ def connect(threads: int | None = None, memory_limit: str | None = None) -> duck
     """A DuckDB connection set to UTC, with a spill folder for out-of-core work."""
     con = duckdb.connect(":memory:")
     con.execute("SET TimeZone = 'UTC'").fetchall()
+    # DuckDB 2.0 folds isnan() to false from Parquet min/max statistics, which leave NaN out, so a NaN
+    # written by pyarrow would pass as a number (and an unmeasured impression count as measured).
+    # Without statistics propagation the NaN is seen; the rules treat it as empty (see _expr_and_checks).
+    con.execute("SET disabled_optimizers = 'statistics_propagation'").fetchall()
     if threads:
         con.execute(f"SET threads = {int(threads)}").fetchall()
     if memory_limit:
@@ -286,16 +290,18 @@ def _expr_and_checks(col: Column, rtype: str, id_type: str) -> tuple[str, list[t
                        f"write {col.name} as true or false (leave it empty for an unmeasured impression)"))
         return expr, checks
     if col.kind == "number":
+        # NaN (as numpy and pyarrow write a missing float) means empty, as in pandas; infinity is an error
         if base in _NUMERIC or base.startswith("DECIMAL"):
-            expr = f"CAST({c} AS DOUBLE)"
+            raw = f"CAST({c} AS DOUBLE)"
             notnum = "FALSE"
         elif is_text:
-            expr = f"try_cast(NULLIF(trim({c}), '') AS DOUBLE)"
+            raw = f"try_cast(NULLIF(trim({c}), '') AS DOUBLE)"
             notnum = f"({c} IS NOT NULL AND trim({c}) <> '' AND try_cast(trim({c}) AS DOUBLE) IS NULL)"
         else:
-            expr = "CAST(NULL AS DOUBLE)"
+            raw = "CAST(NULL AS DOUBLE)"
             notnum = "TRUE"
-        checks.append((f"({notnum} OR isnan({expr}) OR isinf({expr}))", "{n} value(s) are not numbers",
+        expr = raw if raw.startswith("CAST(NULL") else f"CASE WHEN isnan({raw}) THEN NULL ELSE {raw} END"
+        checks.append((f"({notnum} OR isinf({expr}))", "{n} value(s) are not numbers",
                        f"write {col.name} as a plain number such as 1.5"))
         if not col.nullable:
             checks.append((f"({expr} IS NULL)", "{n} empty value(s)", f"every row needs a {col.name}"))

@@ -186,3 +186,29 @@ def test_dataset_has_named_dimensions():
     assert set(ds.users.dims) == {"campaign", "cell", "arm", "outcome"}
     assert float(ds.conversions.sel(campaign="B", cell="all", arm="seen", outcome="visit")) == 1.0
     assert str(ds.role.sel(campaign="A", outcome="visit").item()) == "placebo"
+
+
+@pytest.mark.parametrize("engine", ENGINES)
+def test_nan_seconds_mean_unmeasured(engine, tmp_path):
+    # pyarrow keeps numpy's NaN in a float column (pandas' to_parquet would write null); NaN seconds
+    # mean "not measured", like an empty cell.  Hand: a (1.5 s: viewable), b (NaN: unmeasured only),
+    # c (0.5 s: measured, not viewable).  DuckDB 2.0 hid such NaN behind Parquet statistics: a
+    # regression test for both engines.
+    import numpy as np
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    s = np.array([1.5, np.nan, 0.5])
+    pq.write_table(pa.table({"user_id": ["a", "b", "c"], "campaign": ["X"] * 3,
+                             "served_at": [iso(T0)] * 3, "ad_format": ["display"] * 3, "ad_width": [300] * 3,
+                             "ad_height": [250] * 3, "seconds_in_view_50": pa.array(s),
+                             "seconds_in_view_30": pa.array(s)}), tmp_path / "imp.parquet")
+    conv = pd.DataFrame({"user_id": ["a", "b"], "outcome": ["buy", "buy"], "converted_at": [iso(T0 + D)] * 2})
+    out = pd.DataFrame({"campaign": ["X", "X"], "outcome": ["buy", "visit"], "role": ["target", "placebo"]})
+    kw = {"spark": spark_for_tests()} if engine == "spark" else {}
+    res = prepare_counts(tmp_path / "imp.parquet", conv, out, rules=NO_CELLS, engine=engine, **kw)
+    got = res.counts.set_index(["arm", "outcome"])[["users", "conversions"]]
+    assert got.loc[("seen", "buy")].tolist() == [1, 1]
+    assert got.loc[("unseen", "buy")].tolist() == [1, 0]
+    c = res.summary.campaigns.iloc[0]
+    assert (c["users_unmeasured_only"], c["measured_impressions"]) == (1, 2)
