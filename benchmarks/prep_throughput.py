@@ -109,9 +109,11 @@ def _child(mode: str, info: dict) -> None:
         t1 = time.perf_counter()
         prepare_counts(info["impressions"], info["conversions"], info["outcomes"], engine="spark", spark=spark)
         work = time.perf_counter() - t1
+        pid = spark.sparkContext._jvm.java.lang.ProcessHandle.current().pid()
+        status = Path(f"/proc/{pid}/status").read_text()
+        jvm = next(int(x.split()[1]) for x in status.splitlines() if x.startswith("VmHWM")) / 1024
         spark.stop()
         secs = time.perf_counter() - t0
-        jvm = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
         print(json.dumps({"mode": mode, "seconds": secs, "work_seconds": work, "jvm_peak_mb": jvm,
                           "peak_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}))
         return
