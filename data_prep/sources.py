@@ -144,16 +144,22 @@ class Inputs:
         return kind in self.tables
 
 
+def _frame_label(kind: str, source: pd.DataFrame) -> str:
+    """The label of an input given as a DataFrame (it must have columns)."""
+    label = f"{kind} table (DataFrame)"
+    if len(source.columns) == 0:
+        raise InputError(problem="the table has no columns", file=label,
+                         fix=f"pass a DataFrame with the {kind} columns")
+    return label
+
+
 def _load_spark(con, kind: str, source) -> Table:
     """The Spark twin of :func:`_load`: the same checks, Spark's readers (any path Spark can read)."""
     from liftpool.data_prep.engine_spark import parquet_paths
 
     raw = f"raw_{kind}"
     if isinstance(source, pd.DataFrame):
-        label = f"{kind} table (DataFrame)"
-        if len(source.columns) == 0:
-            raise InputError(problem="the table has no columns", file=label,
-                             fix=f"pass a DataFrame with the {kind} columns")
+        label = _frame_label(kind, source)
         con.register(raw, source)
         sdf = con.spark.table(raw)
         from liftpool.data_prep.engine_spark import _duck_type
@@ -190,10 +196,7 @@ def _load(con: duckdb.DuckDBPyConnection, kind: str, source) -> Table:
         return _load_spark(con, kind, source)
     raw = f"raw_{kind}"
     if isinstance(source, pd.DataFrame):
-        label = f"{kind} table (DataFrame)"
-        if len(source.columns) == 0:
-            raise InputError(problem="the table has no columns", file=label,
-                             fix=f"pass a DataFrame with the {kind} columns")
+        label = _frame_label(kind, source)
         con.register(f"df_{kind}", source)
         con.execute(f"CREATE OR REPLACE VIEW {raw} AS SELECT * FROM df_{kind}").fetchall()
     else:

@@ -289,30 +289,23 @@ class Workspace:
         out = {}
         for k in INPUT_KEYS:
             for n, p in enumerate(_as_list(i[k]) if k in i else []):
-                out[f"{k}[{n}] {Path(p).name}"] = file_sha256(p)
+                if "://" not in str(p) and Path(p).is_file():  # remote inputs (Spark) are not hashed
+                    out[f"{k}[{n}] {Path(p).name}"] = file_sha256(p)
         return out
 
-    def add_placebo(self, outcomes_file, conversions=None, progress: Callable[[str], None] | None = None
-                    ) -> tuple[PrepSummary, int]:
-        """Register new placebo outcomes and count only their conversions; returns the summary and rows read."""
-        from liftpool.data_prep.incremental import add_outcomes, check_new_outcomes
+    def _stage_new_outcomes(self, outcomes_file, conversions) -> tuple[dict, pd.DataFrame, dict, list[str]]:
+        """Check the new outcomes, keep a copy in ``inputs/`` and return (inputs, new rows, new config,
+        conversion sources).  The copy stays unreferenced until the new config is written."""
+        from liftpool.data_prep.incremental import check_new_outcomes
 
-        gen = self.current()
-        if self.engine == "spark":
-            return self._add_placebo_recount(outcomes_file, conversions, progress)
-        if gen is None or not (gen / "cache").is_dir():
-            raise InputError(problem="the workspace has no current preparation with an exposure cache",
-                             file=str(self.path), fix=f"run 'liftpool prepare {self.path}' first")
         src = Path(outcomes_file)
         if not src.is_file():
             raise InputError(problem="file not found", file=str(src), fix="check the path of the new outcomes file")
+        if conversions and not Path(conversions).is_file():
+            raise InputError(problem="file not found", file=str(conversions), fix="check the conversions path")
         inp = self._inputs()
         new = check_new_outcomes(inp["outcomes"], read_table(src), str(src))
         conv_sources = [str(Path(conversions).resolve())] if conversions else inp["conversions"]
-        if conversions and not Path(conversions).is_file():
-            raise InputError(problem="file not found", file=str(conversions), fix="check the conversions path")
-        all_out = pd.concat([inp["outcomes"], new], ignore_index=True)
-        # 1. keep the new outcomes inside the workspace (unreferenced until the config lists it)
         n = len(list((self.path / "inputs").glob("added_outcomes_*.csv"))) + 1
         kept = self.path / "inputs" / f"added_outcomes_{n:03d}.csv"
         write_text(new.to_csv(index=False), kept)
@@ -320,6 +313,27 @@ class Workspace:
         new_config["inputs"]["outcomes"] = _as_list(self.config["inputs"]["outcomes"]) + [str(kept.resolve())]
         if conversions:
             new_config["inputs"]["conversions"] = inp["conversions"] + conv_sources
+        return inp, new, new_config, conv_sources
+
+    def add_placebo(self, outcomes_file, conversions=None, progress: Callable[[str], None] | None = None
+                    ) -> tuple[PrepSummary, int]:
+        """Register new placebo outcomes and count only their conversions; returns the summary and rows read.
+
+        A Spark workspace keeps no local exposure cache, so there every outcome is recounted on Spark.
+        """
+        from liftpool.data_prep.incremental import add_outcomes
+
+        if self.engine == "spark":
+            _, _, new_config, _ = self._stage_new_outcomes(outcomes_file, conversions)
+            (progress or (lambda _m: None))("Spark workspace: recounting every outcome on Spark")
+            summary = self.prepare(progress=progress, config=new_config)
+            return summary, int(summary.totals.get("impression_rows", 0))
+        gen = self.current()
+        if gen is None or not (gen / "cache").is_dir():
+            raise InputError(problem="the workspace has no current preparation with an exposure cache",
+                             file=str(self.path), fix=f"run 'liftpool prepare {self.path}' first")
+        inp, new, new_config, conv_sources = self._stage_new_outcomes(outcomes_file, conversions)
+        all_out = pd.concat([inp["outcomes"], new], ignore_index=True)
         holder = {}
 
         def build(tmp: Path) -> None:
@@ -330,34 +344,12 @@ class Workspace:
             write_json(res.summary.to_dict(), tmp / "counts.summary.json")
             holder["summary"], holder["rows"] = res.summary, rows
 
-        # 2. build the new preparation; 3. list the new files in the config; 4. make it current
+        # build the new preparation; then list the new files in the config; then make it current
         name = self._build_generation(build)
         self.config = new_config
         self._write_config()
         self._switch(name)
         return holder["summary"], holder["rows"]
-
-    def _add_placebo_recount(self, outcomes_file, conversions, progress) -> tuple[PrepSummary, int]:
-        """``add_placebo`` for a Spark workspace: no local exposure cache, so everything is recounted."""
-        from liftpool.data_prep.incremental import check_new_outcomes
-
-        src = Path(outcomes_file)
-        if not src.is_file():
-            raise InputError(problem="file not found", file=str(src), fix="check the path of the new outcomes file")
-        if conversions and not Path(conversions).is_file():
-            raise InputError(problem="file not found", file=str(conversions), fix="check the conversions path")
-        inp = self._inputs()
-        new = check_new_outcomes(inp["outcomes"], read_table(src), str(src))
-        n = len(list((self.path / "inputs").glob("added_outcomes_*.csv"))) + 1
-        kept = self.path / "inputs" / f"added_outcomes_{n:03d}.csv"
-        write_text(new.to_csv(index=False), kept)
-        new_config = json.loads(json.dumps(self.config))
-        new_config["inputs"]["outcomes"] = _as_list(self.config["inputs"]["outcomes"]) + [str(kept.resolve())]
-        if conversions:
-            new_config["inputs"]["conversions"] = inp["conversions"] + [str(Path(conversions).resolve())]
-        (progress or (lambda _m: None))("Spark workspace: recounting every outcome on Spark")
-        summary = self.prepare(progress=progress, config=new_config)
-        return summary, int(summary.totals.get("impression_rows", 0))
 
     def fit(self, quick: bool = False, progress: Callable[[str], None] | None = None, progressbar: bool = False,
             groups: dict | None = None, **overrides) -> tuple[str, FitResult]:
