@@ -118,9 +118,11 @@ def load_screen(folder: str | Path) -> ScreenResult:
     doc = json.loads((folder / "screen.json").read_text())
 
     def csv(name):
-        df = pd.read_csv(folder / name, keep_default_na=False, na_values=[""], dtype={"level": str})
-        if "level" in df:
-            df["level"] = df["level"].fillna("")
+        text_cols = {"level": str, "covariates": str, "added": str}
+        df = pd.read_csv(folder / name, keep_default_na=False, na_values=[""], dtype=text_cols)
+        for c in text_cols:
+            if c in df:
+                df[c] = df[c].fillna("")
         return df
 
     before = csv("balance_before.csv").drop(columns="stage")

@@ -213,6 +213,7 @@ def test_workspace_screen_goes_into_the_next_report(noisy_scenario, tmp_path):
     assert main(["screen", str(ws.path), "--candidates", "view_history", "-q"]) == 0
     assert (ws.path / "screens" / "002" / "screen.json").is_file()  # a new screen never replaces one
     assert ws.latest_screen().suggested == ("view_history",)
+    assert ws.latest_screen().steps["covariates"].iloc[0] == ""  # step 0: no covariates, read back as text
     assert main(["prepare", str(ws.path), "-q"]) == 0
     assert main(["fit", str(ws.path), "--quick", "-q"]) == 0
     assert main(["report", str(ws.path), "-q"]) == 0
