@@ -21,7 +21,7 @@ import pandas as pd
 
 from liftpool.data_prep.errors import InputError
 
-__all__ = ["SparkConnection", "spark_session", "to_spark_sql", "spark_available"]
+__all__ = ["SparkConnection", "spark_session", "to_spark_sql", "spark_available", "is_spark", "parquet_paths"]
 
 _CREATE = re.compile(r"^\s*CREATE\s+(?:OR\s+REPLACE\s+)?(TEMP\s+|TEMPORARY\s+)?(TABLE|VIEW)\s+(\w+)\s+AS\s+(.*)$",
                      re.IGNORECASE | re.DOTALL)
@@ -185,21 +185,36 @@ class SparkConnection:
         sdf.createOrReplaceTempView(name)
         self._frames[name] = sdf
 
-    def load_parquet(self, view: str, paths: list[str], label: str) -> tuple[dict[str, str], int]:
-        """Register Parquet files (any path Spark reads) as ``view``; return DuckDB-style types and rows."""
+    def load_frame(self, view: str, df: pd.DataFrame) -> tuple[dict[str, str], int]:
+        """Register a pandas table as ``view``; return DuckDB-style types and the row count."""
+        self.register(view, df)
+        return _describe(self.spark.table(view))
+
+    def load_files(self, view: str, paths: list[str], fmt: str, label: str) -> tuple[dict[str, str], int]:
+        """Register Parquet or CSV files (any path Spark reads) as ``view``; return types and rows.
+
+        CSV is read with every column as text, as DuckDB's ``all_varchar``, so validation is the same.
+        """
         from pyspark.errors import AnalysisException
 
         try:
-            sdf = self.spark.read.option("mergeSchema", "true").parquet(*paths)
+            if fmt == "csv":
+                sdf = self.spark.read.option("header", "true").csv(paths)
+            else:
+                sdf = self.spark.read.option("mergeSchema", "true").parquet(*paths)
         except AnalysisException as exc:
             first = str(exc).splitlines()[0]
             if "PATH_NOT_FOUND" in first or "does not exist" in first:
                 raise InputError(problem="file not found", file=label, fix="check the path and the file name") from None
             raise InputError(problem=f"cannot read the file: {first}", file=label,
-                             fix="check that it is a valid Parquet file") from None
+                             fix=f"check that it is a valid {fmt.upper()} file") from None
         sdf.createOrReplaceTempView(view)
-        types = {f.name: _duck_type(f.dataType.simpleString()) for f in sdf.schema.fields}
-        return types, int(sdf.count())
+        return _describe(sdf)
+
+
+def _describe(sdf) -> tuple[dict[str, str], int]:
+    """Column types (DuckDB names) and row count of a Spark DataFrame."""
+    return {f.name: _duck_type(f.dataType.simpleString()) for f in sdf.schema.fields}, int(sdf.count())
 
 
 def _duck_type(t: str) -> str:
@@ -214,6 +229,7 @@ def _duck_type(t: str) -> str:
 
 
 def is_spark(con) -> bool:
+    """True for a :class:`SparkConnection` (the validation and counting code takes either connection)."""
     return getattr(con, "engine", None) == "spark"
 
 

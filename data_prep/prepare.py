@@ -97,6 +97,9 @@ def prepare_counts(
     if engine not in ENGINES:
         raise ConfigError.invalid_choice("engine", engine, ENGINES)
     say = progress or (lambda _msg: None)
+    if engine == "spark" and cache is not None:
+        raise ConfigError(problem="the exposure cache is kept by the DuckDB engine only",
+                          fix="prepare with --engine duckdb in a workspace, or without a cache")
     user_covs = tuple(c for c in rules.covariates if c not in BUILTIN_COVARIATES)
     if inputs is None:
         say("reading and checking inputs" + (" (Spark)" if engine == "spark" else ""))
@@ -108,9 +111,6 @@ def prepare_counts(
         inputs = open_inputs(impressions, conversions, outcomes, users=users, spend=spend, covariates=user_covs,
                              con=con)
     if engine in ("duckdb", "spark"):
-        if engine == "spark" and cache is not None:
-            raise ConfigError(problem="the exposure cache is kept by the DuckDB engine only",
-                              fix="prepare with --engine duckdb in a workspace, or without a cache")
         say("building exposures (one pass over the impressions)")
         build_exposures(inputs, rules)
         say("counting conversions by campaign, cell and arm")

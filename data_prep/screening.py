@@ -21,7 +21,7 @@ import pandas as pd
 
 from liftpool.data_prep.cells import cell_spec
 from liftpool.data_prep.counts import finalize
-from liftpool.data_prep.engine_sql import _numeric_values, build_exposures, count_sql
+from liftpool.data_prep.engine_sql import _numeric_values, _q, build_exposures, count_sql
 from liftpool.data_prep.rules import BUILTIN_COVARIATES, FREQUENCY, VIEW_HISTORY, CountingRules
 from liftpool.data_prep.sources import Inputs
 
@@ -63,10 +63,6 @@ def users_columns(source) -> list[str]:
         else:
             cols = list(pd.read_csv(source, nrows=0).columns)
     return [c for c in cols if c != "user_id"]
-
-
-def _q(name: str) -> str:
-    return '"' + name.replace('"', '""') + '"'
 
 
 @dataclass
@@ -114,8 +110,8 @@ class ScreenData:
         """
         if not stratify:
             return "", "1.0"
-        spec = cell_spec(replace(self.rules, covariates=tuple(stratify)), _numeric_values(
-            self.inputs, replace(self.rules, covariates=tuple(stratify))))
+        rules = replace(self.rules, covariates=tuple(stratify))
+        spec = cell_spec(rules, _numeric_values(self.inputs, rules))
         cols = {c: f"s.{self._value_expr(c)}" for c in stratify}
         keys = spec.sql_keys(cols)
         kexpr = ", ".join(f"{k} AS _w{i}" for i, k in enumerate(keys))

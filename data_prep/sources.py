@@ -160,12 +160,7 @@ def _load_spark(con, kind: str, source) -> Table:
     raw = f"raw_{kind}"
     if isinstance(source, pd.DataFrame):
         label = _frame_label(kind, source)
-        con.register(raw, source)
-        sdf = con.spark.table(raw)
-        from liftpool.data_prep.engine_spark import _duck_type
-
-        types = {f.name: _duck_type(f.dataType.simpleString()) for f in sdf.schema.fields}
-        n_rows = int(sdf.count())
+        types, n_rows = con.load_frame(raw, source)
     else:
         paths = parquet_paths(source)
         label = " + ".join(str(x) for x in (source if isinstance(source, (list, tuple)) else [source]))
@@ -176,15 +171,7 @@ def _load_spark(con, kind: str, source) -> Table:
         for x in paths:
             if "://" not in x and not Path(x).exists():
                 raise InputError(problem="file not found", file=x, fix="check the path and the file name")
-        if fmts.pop() == "csv":
-            sdf = con.spark.read.option("header", "true").csv(paths)  # every column text, as DuckDB's all_varchar
-            sdf.createOrReplaceTempView(raw)
-            from liftpool.data_prep.engine_spark import _duck_type
-
-            types = {f.name: _duck_type(f.dataType.simpleString()) for f in sdf.schema.fields}
-            n_rows = int(sdf.count())
-        else:
-            types, n_rows = con.load_parquet(raw, paths, label)
+        types, n_rows = con.load_files(raw, paths, fmts.pop(), label)
     if n_rows == 0:
         raise InputError(problem="the table has a header but no data rows", file=label,
                          fix=f"export the {kind} table again with its rows")
@@ -192,7 +179,9 @@ def _load_spark(con, kind: str, source) -> Table:
 
 
 def _load(con: duckdb.DuckDBPyConnection, kind: str, source) -> Table:
-    if getattr(con, "engine", None) == "spark":
+    from liftpool.data_prep.engine_spark import is_spark
+
+    if is_spark(con):
         return _load_spark(con, kind, source)
     raw = f"raw_{kind}"
     if isinstance(source, pd.DataFrame):

@@ -6,10 +6,9 @@ from pathlib import Path
 
 __all__ = ["register", "cmd_plan"]
 
-#: command-line flag -> PlanInputs field
-FIELDS = {"users": float, "seen_share": float, "baseline_rate": float, "lift": float, "placebos": int,
-          "campaigns": int, "level": float, "placebo_rate": float, "bias_mean": float, "bias_sd": float,
-          "residual_sd": float, "lift_sd": float}
+#: PlanInputs fields that have a command-line flag of the same name
+FIELDS = ("users", "seen_share", "baseline_rate", "lift", "placebos", "campaigns", "level", "placebo_rate",
+          "bias_mean", "bias_sd", "residual_sd", "lift_sd")
 
 
 def register(sub, common) -> None:

@@ -153,11 +153,16 @@ def screen(data, settings: ModelSettings | None = None, progress: Callable[[str]
     s = settings or ModelSettings()
     say = progress or (lambda _m: None)
 
+    done: dict[tuple[str, ...], dict] = {}
+
     def evaluate(covs: tuple[str, ...]) -> dict:
-        counts, summary = data.counts(covs)
-        b = placebo_bias(counts, s)
-        cells = counts[counts["arm"] == "seen"][["campaign", "cell"]].drop_duplicates()
-        return {"bias": b.mean, "bias_sd": b.sd, "cells": int(len(cells)), "users_lost": _users_lost(summary)}
+        if covs not in done:  # the ranking's single covariates are the greedy selection's first step
+            counts, summary = data.counts(covs)
+            b = placebo_bias(counts, s)
+            cells = counts[counts["arm"] == "seen"][["campaign", "cell"]].drop_duplicates()
+            done[covs] = {"bias": b.mean, "bias_sd": b.sd, "cells": int(len(cells)),
+                          "users_lost": _users_lost(summary)}
+        return done[covs]
 
     say("placebo bias without cells")
     base = evaluate(())

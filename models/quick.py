@@ -25,7 +25,7 @@ from liftpool.models.design import Design
 from liftpool.models.pooling import PoolingPrior, pool
 from liftpool.models.settings import ModelSettings
 
-__all__ = ["mantel_haenszel", "stratified_estimates", "QuickResult", "quick_fit"]
+__all__ = ["mantel_haenszel", "stratified_estimates", "QuickResult", "quick_fit", "quick_bias_prior"]
 
 
 def mantel_haenszel(a, b, c, d) -> tuple[float, float]:
@@ -85,6 +85,11 @@ class QuickResult:
     bias_sd: np.ndarray | None
 
 
+def quick_bias_prior(s: ModelSettings) -> PoolingPrior:
+    """The quick mode's prior for pooling placebo estimates (the portfolio's bias distribution)."""
+    return PoolingPrior(0.0, s.bias_mean_scale, float(np.hypot(s.bias_sd_scale, s.residual_sd_scale)), "halfnormal")
+
+
 def quick_fit(d: Design, s: ModelSettings, n_draws: int = 4000) -> QuickResult:
     """Fit the quick mode on a design."""
     rng = np.random.default_rng(s.seed)
@@ -98,7 +103,7 @@ def quick_fit(d: Design, s: ModelSettings, n_draws: int = 4000) -> QuickResult:
     if len(pl) == 0:
         post = pool(t, st, lift_prior, n_draws=n_draws, seed=rng)
         return QuickResult(est, post.theta, unc, np.zeros((n_draws, C)), post.mu, post.tau, post.new, None, None)
-    bias_prior = PoolingPrior(0.0, s.bias_mean_scale, np.hypot(s.bias_sd_scale, s.residual_sd_scale), "halfnormal")
+    bias_prior = quick_bias_prior(s)
     bpost = pool(pl["log_or"].to_numpy(), pl["se"].to_numpy(), bias_prior, n_draws=n_draws, seed=rng)
     per = 10
     J = max(1, n_draws // per)

@@ -14,8 +14,8 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from liftpool.models.pooling import PoolingPrior, pool
-from liftpool.models.quick import stratified_estimates
+from liftpool.models.pooling import pool
+from liftpool.models.quick import quick_bias_prior, stratified_estimates
 from liftpool.models.settings import ModelSettings
 
 __all__ = ["PlaceboBias", "placebo_bias"]
@@ -65,8 +65,7 @@ def placebo_bias(counts: pd.DataFrame, settings: ModelSettings | None = None) ->
     pl = est[est["role"] == "placebo"]
     if pl.empty:
         raise ValueError("the counts have no placebo outcome: nothing measures the bias")
-    prior = PoolingPrior(0.0, s.bias_mean_scale, float(np.hypot(s.bias_sd_scale, s.residual_sd_scale)), "halfnormal")
-    post = pool(pl["log_or"].to_numpy(), pl["se"].to_numpy(), prior, n_draws=4000, seed=s.seed)
+    post = pool(pl["log_or"].to_numpy(), pl["se"].to_numpy(), quick_bias_prior(s), n_draws=4000, seed=s.seed)
     exact = post.exact_means()
     w = post.tau_weights
     mu_var = float(w @ (post.mu_var + post.mu_mean**2) - exact["mu"] ** 2)

@@ -161,7 +161,8 @@ def _df_table(df: pd.DataFrame, fmt: dict | None = None) -> str:
 
 def render_html(t: ReportTables, figures: dict[str, bytes], paragraphs: list[tuple[str, str]], portfolio: str,
                 converged: bool, mode: str, flags: dict, title: str, prep_totals: dict | None,
-                screen=None) -> str:
+                screen: tuple | None = None) -> str:
+    """The self-contained report page; ``screen`` is (suggested covariates, ranking, balance) of a screen."""
     L = int(round(t.level * 100))
     parts = [f"<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\"><title>{esc(title)}</title>"
              f"<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\"><style>{CSS}</style></head><body>"]
@@ -224,14 +225,12 @@ def render_html(t: ReportTables, figures: dict[str, bytes], paragraphs: list[tup
                      .replace("{L}", str(L)))
         parts.append(_df_table(t.predictive))
     if screen is not None:
-        from liftpool.reports.screening import appendix_table
-
-        ranking, balance = appendix_table(screen)
+        suggested, ranking, balance = screen
         parts.append("<h3>Confounder screen</h3><p>For each candidate covariate: the placebo bias (the quick "
                      "mode's pooled placebo effect, log odds) without cells and with cells on it alone, its "
                      "balance between seen and unseen users (standardized mean difference, flagged above 0.1, "
                      "Austin 2009) and its association with the placebo outcomes. Suggested cells: "
-                     f"{esc(', '.join(screen.suggested) or '(none)')}.</p>")
+                     f"{esc(', '.join(suggested) or '(none)')}.</p>")
         parts.append(_df_table(ranking))
         parts.append("<p>Balance before and after stratifying on the suggested cells (users-weighted mean "
                      "|SMD| over campaigns):</p>")

@@ -83,23 +83,23 @@ def write_report(
     tables: ReportTables = build_tables(fit, spend=spend, prep_campaigns=None if prep_summary is None
                                         else prep_summary.campaigns, currency=currency, level=level, provenance=prov)
     figures = make_figures(tables)
+    screen_tables = None
     if screen is not None:
-        from liftpool.reports.screening import balance_figure
+        from liftpool.reports.screening import appendix_table, balance_figure
 
         figures["covariate_balance.png"] = balance_figure(screen)
+        screen_tables = (screen.suggested, *appendix_table(screen))
     flags = fit.flags.to_dict()
     totals = None
     if prep_summary is not None:
         totals = {k: v for k, v in prep_summary.totals.items() if not isinstance(v, dict)}
     html = render_html(tables, figures, campaign_paragraphs(tables, flags), portfolio_paragraph(tables),
-                       fit.converged, fit.mode, flags, title, totals, screen=screen)
+                       fit.converged, fit.mode, flags, title, totals, screen=screen_tables)
     with atomic_folder(out) as tmp:
         (tmp / "report.html").write_text(html, encoding="utf-8")
         named = tables.named()
-        if screen is not None:
-            from liftpool.reports.screening import appendix_table
-
-            named["screen_ranking"], named["screen_balance"] = appendix_table(screen)
+        if screen_tables is not None:
+            _, named["screen_ranking"], named["screen_balance"] = screen_tables
         write_xlsx(named, tmp / "tables.xlsx")
         for name, df in named.items():
             df.to_csv(tmp / f"{name}.csv", index=False)
