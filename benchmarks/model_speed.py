@@ -5,16 +5,26 @@
    gradients agree), and the ratio of time per gradient evaluation and per draw.
 2. samplers: ESS per second of lift_mean and bias_sd for each NUTS implementation
    installed (pymc, nutpie), compile versus sampling time.
-3. scale: 200 campaigns x 24 cells x 6 outcomes; time, peak memory, divergences.
+3. start: one chain from an ADVI start against one from PyMC's jitter start (the baseline), on
+   40 campaigns x 24 cells x 6 outcomes: time and leapfrog steps in tuning and draws.
+4. scale: 200 campaigns x 24 cells x 6 outcomes with the defaults: time, peak memory, divergences.
 
-Usage: python benchmarks/model_speed.py [counts] [samplers] [scale] [--draws=N --tune=N (scale)]
+Usage: python benchmarks/model_speed.py [counts] [samplers] [start] [scale] [--draws=N --tune=N (start, scale)
+       --campaigns=N (start)]
 """
 
 from __future__ import annotations
 
-import resource
-import sys
-import time
+import os
+
+# One BLAS thread per process, as each of PyMC's chain processes gets on a 2-core machine: a
+# multithreaded BLAS in a single-chain probe spins against the other process and skews the ratio.
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+os.environ.setdefault("OMP_NUM_THREADS", "1")
+
+import resource  # noqa: E402
+import sys  # noqa: E402
+import time  # noqa: E402
 
 import arviz as az
 import numpy as np
@@ -150,25 +160,61 @@ def bench_samplers() -> None:
         print(line, flush=True)
 
 
+def bench_start(campaigns: int = 40, tune: int = 200, draws: int = 100) -> None:
+    """One chain from each start on campaigns x 24 cells x 6 outcomes: time and leapfrog steps."""
+    import pymc as pm
+
+    from liftpool.models.hierarchical import build_model
+
+    configure_backend()
+    counts = synthetic_counts(campaigns, 24, 6, users_per_cell=400, seed=2)
+    model = build_model(make_design(counts), ModelSettings())
+    n_free = int(sum(np.size(v) for v in model.initial_point().values()))
+    s = ModelSettings()
+    print(f"start: {campaigns} campaigns x 24 cells x 6 outcomes ({n_free:,} free parameters), one chain, "
+          f"{tune} tuning + {draws} draws, target_accept {s.target_accept}", flush=True)
+    res = {}
+    for init in ("jitter+adapt_diag", "advi+adapt_diag"):
+        t = time.perf_counter()
+        with model:
+            idata = pm.sample(draws=draws, tune=tune, chains=1, cores=1, init=init, n_init=s.advi_iterations,
+                              random_seed=5, nuts_sampler="pymc", target_accept=s.target_accept,
+                              progressbar=False, compute_convergence_checks=False, discard_tuned_samples=False)
+        secs = time.perf_counter() - t
+        warm = idata.warmup_sample_stats["n_steps"].values.ravel()
+        kept = idata.sample_stats["n_steps"].values.ravel()
+        res[init] = secs
+        print(f"  {init:18s}: {secs:6.1f} s (ADVI included); leapfrog steps per iteration: first half of "
+              f"tuning {warm[: tune // 2].mean():5.0f}, second half {warm[tune // 2:].mean():5.0f}, draws "
+              f"{kept.mean():5.0f}; divergences in draws {int(idata.sample_stats['diverging'].sum())}", flush=True)
+    print(f"  time, ADVI start / jitter start: {res['advi+adapt_diag'] / res['jitter+adapt_diag']:.2f}x", flush=True)
+
+
 def bench_scale(draws: int = 1000, tune: int = 1000) -> None:
+    """200 campaigns x 24 cells x 6 outcomes with the default settings (``auto`` start): time, memory, checks."""
     counts = synthetic_counts(200, 24, 6, users_per_cell=400, seed=2)
+    print(f"scale: {len(counts):,} count rows (200 campaigns x 24 cells x 6 outcomes x 2 arms)", flush=True)
     t = time.perf_counter()
     f = fit_counts(counts, ModelSettings(draws=draws, tune=tune), progress=lambda m: print(m, flush=True))
     secs = time.perf_counter() - t
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
-    print(f"scale: {len(counts):,} count rows (200 campaigns x 24 cells x 6 outcomes x 2 arms), {tune} tuning + "
-          f"{draws} draws x 4 chains: {secs / 60:.1f} min, "
-          f"peak {peak:,.0f} MB (parent process; chains run in worker processes)")
+    peak_child = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
+    ss = f.idata.sample_stats
+    print(f"scale fit: {tune} tuning + {draws} draws x {f.settings.chains} chains, start {f.info.get('init')}: "
+          f"{secs / 60:.1f} min in all (sampling incl. start {f.info['sampling_seconds'] / 60:.1f} min); "
+          f"{float(ss['n_steps'].mean()):.0f} leapfrog steps per draw, step size {float(ss['step_size'].mean()):.4f}; "
+          f"peak memory {peak:,.0f} MB main process, {peak_child:,.0f} MB largest chain process", flush=True)
     print(f.diagnostics.render())
 
 
 if __name__ == "__main__":
     args = sys.argv[1:]
     opts = {a.split("=")[0].lstrip("-"): int(a.split("=")[1]) for a in args if a.startswith("--")}
-    which = [a for a in args if not a.startswith("--")] or ["counts", "samplers", "scale"]
+    which = [a for a in args if not a.startswith("--")] or ["counts", "samplers", "start", "scale"]
     for w in which:
-        if w == "scale":
-            bench_scale(**opts)
+        if w in ("scale", "start"):
+            fn = bench_scale if w == "scale" else bench_start
+            fn(**{k: v for k, v in opts.items() if k in fn.__code__.co_varnames})
         else:
             {"counts": bench_counts, "samplers": bench_samplers}[w]()
         sys.stdout.flush()

@@ -13,10 +13,12 @@ def model_args(p: argparse.ArgumentParser) -> None:
     g.add_argument("--quick", action="store_true", help="quick mode: stratified estimates pooled exactly, seconds")
     g.add_argument("--chains", type=int, help="NUTS chains (default 4)")
     g.add_argument("--draws", type=int, help="kept draws per chain (default 2000)")
-    g.add_argument("--tune", type=int, help="tuning steps per chain (default 2000)")
+    g.add_argument("--tune", type=int, help="tuning steps per chain (default 1000)")
     g.add_argument("--seed", type=int, help="random seed (recorded with the fit)")
     g.add_argument("--level", type=float, help="credible-interval level (default 0.9)")
     g.add_argument("--sampler", choices=["pymc", "nutpie", "numpyro"], help="NUTS implementation (default pymc)")
+    g.add_argument("--init", choices=["auto", "advi+adapt_diag", "jitter+adapt_diag"],
+                   help="how PyMC's NUTS starts (default auto: ADVI for large models)")
     g.add_argument("--target-accept", type=float, help="NUTS target acceptance (default 0.99)")
     g.add_argument("--parameterization", choices=["noncentered", "centered"], help="of the campaign-level effects (default noncentered)")
     g.add_argument("--bias-sign", choices=["any", "nonnegative"], help="constrain each campaign's bias to >= 0")
@@ -28,7 +30,7 @@ def model_args(p: argparse.ArgumentParser) -> None:
 def overrides_from_args(args) -> dict:
     """Model settings given on the command line (only those given)."""
     vals = {name: getattr(args, name) for name in ("chains", "draws", "tune", "seed", "level", "sampler",
-                                                  "target_accept", "parameterization", "bias_sign")
+                                                  "target_accept", "init", "parameterization", "bias_sign")
             if getattr(args, name, None) is not None}
     if getattr(args, "outcome_bias", False):
         vals["outcome_bias"] = True

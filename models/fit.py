@@ -29,7 +29,10 @@ from liftpool.models.quick import quick_fit, quick_relative
 from liftpool.models.settings import ModelSettings, default_cores
 from liftpool.models.summary import NEW_CAMPAIGN, PORTFOLIO, summarize_draws
 
-__all__ = ["FitResult", "fit_counts", "load_fit", "package_versions"]
+__all__ = ["FitResult", "fit_counts", "load_fit", "package_versions", "choose_init", "AUTO_ADVI_FROM"]
+
+#: ``init="auto"`` starts PyMC's NUTS from ADVI from this many free parameters on (docs/performance.md).
+AUTO_ADVI_FROM = 1000
 
 
 def package_versions() -> dict[str, str]:
@@ -137,6 +140,25 @@ class FitResult:
         return (f"<div><p>liftpool fit ({escape(self.mode)}; {status}; level {self.settings.level:.0%})</p>"
                 f"<table><tr><th>campaign</th><th>{escape(q)} (median)</th><th>interval</th></tr>{rows}</table>"
                 "<p>Observational estimate, not a randomized test.</p></div>")
+
+
+def choose_init(n_free: int, s: ModelSettings) -> str:
+    """The NUTS start PyMC gets: ``s.init``, or for ``"auto"`` ADVI from :data:`AUTO_ADVI_FROM` free parameters on.
+
+    Parameters
+    ----------
+    n_free : int
+        Free parameters of the model (the length of the unconstrained vector NUTS moves in).
+    s : ModelSettings
+
+    Returns
+    -------
+    str
+        ``"advi+adapt_diag"`` or ``"jitter+adapt_diag"``.
+    """
+    if s.init != "auto":
+        return s.init
+    return "advi+adapt_diag" if n_free >= AUTO_ADVI_FROM else "jitter+adapt_diag"
 
 
 def load_fit(folder: str | os.PathLike) -> FitResult:
@@ -320,21 +342,40 @@ def fit_counts(
         model = build_model(d, s)
         import pymc as pm
 
+        n_free = int(sum(np.size(v) for v in model.initial_point().values()))
+        init = choose_init(n_free, s)
+        info["free_parameters"] = n_free
         say(f"sampling: {s.chains} chains x ({s.tune} tuning + {s.draws} draws), sampler {s.sampler}, "
-            f"seed {s.seed}")
+            f"seed {s.seed}" + (f", start {init} ({n_free:,} free parameters)" if s.sampler == "pymc" else ""))
+
+        def run(init: str) -> az.InferenceData:
+            with model:
+                return pm.sample(draws=s.draws, tune=s.tune, chains=s.chains,
+                                 cores=min(s.chains, default_cores()), random_seed=s.seed,
+                                 target_accept=s.target_accept, nuts_sampler=s.sampler, init=init,
+                                 n_init=s.advi_iterations, progressbar=progressbar,
+                                 compute_convergence_checks=False)
+
         with _interrupt_watch() as interrupted:
             try:
-                with model:
-                    idata = pm.sample(draws=s.draws, tune=s.tune, chains=s.chains,
-                                      cores=min(s.chains, default_cores()), random_seed=s.seed,
-                                      target_accept=s.target_accept, nuts_sampler=s.sampler,
-                                      progressbar=progressbar, compute_convergence_checks=False)
+                try:
+                    idata = run(init)
+                except FloatingPointError as exc:
+                    if init != "advi+adapt_diag" or interrupted():
+                        raise
+                    # ADVI's optimisation met a NaN: start the plain way instead, and say so
+                    say(f"ADVI start failed ({str(exc).splitlines()[0]}); starting with jitter+adapt_diag")
+                    info["init_fallback"] = f"ADVI failed: {str(exc).splitlines()[0]}"
+                    init = "jitter+adapt_diag"
+                    idata = run(init)
             except Exception as exc:  # noqa: BLE001 - surfaced as a FitError with the cause
                 if interrupted():
                     raise KeyboardInterrupt("sampling was interrupted") from None
                 raise FitError(f"sampling failed: {type(exc).__name__}: {exc}") from exc
             if interrupted():
                 raise KeyboardInterrupt("sampling was interrupted")
+        if s.sampler == "pymc":
+            info["init"] = init
         got = idata.posterior.sizes
         if got["chain"] != s.chains or got["draw"] != s.draws:
             # PyMC returns what it has when interrupted; a partial trace is never a fit

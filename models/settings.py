@@ -9,9 +9,10 @@ from typing import Any
 from liftpool.data_prep.errors import ConfigError
 from liftpool.data_prep.options import OptionsMixin
 
-__all__ = ["ModelSettings", "SAMPLERS", "PARAMETERIZATIONS", "BIAS_SIGNS", "default_cores"]
+__all__ = ["ModelSettings", "SAMPLERS", "INITS", "PARAMETERIZATIONS", "BIAS_SIGNS", "default_cores"]
 
 SAMPLERS = ("pymc", "nutpie", "numpyro")
+INITS = ("auto", "advi+adapt_diag", "jitter+adapt_diag")
 PARAMETERIZATIONS = ("noncentered", "centered")
 BIAS_SIGNS = ("any", "nonnegative")
 
@@ -34,6 +35,14 @@ class ModelSettings(OptionsMixin):
         NUTS target acceptance rate.
     sampler : {"pymc", "nutpie", "numpyro"}
         NUTS implementation (passed to PyMC as ``nuts_sampler``).
+    init : {"auto", "advi+adapt_diag", "jitter+adapt_diag"}
+        How PyMC's NUTS starts its chains and its mass matrix.  ``advi+adapt_diag`` fits a
+        mean-field ADVI approximation first and starts from its draws, with its variances as the
+        initial mass matrix; ``jitter+adapt_diag`` starts near the prior centres with a unit mass
+        matrix.  ``auto`` uses ADVI for large models, where a unit mass matrix makes the warm-up
+        run at the tree-depth cap (docs/performance.md).  Ignored by the other samplers.
+    advi_iterations : int
+        ADVI iterations when the start uses ADVI (it stops sooner when its parameters settle).
     parameterization : {"noncentered", "centered"}
         Of the campaign-level effects (bias, lift, residuals); baselines always follow
         their own data (centered where a cell has many conversions).
@@ -61,6 +70,8 @@ class ModelSettings(OptionsMixin):
     seed: int = 20261201
     target_accept: float = 0.99
     sampler: str = "pymc"
+    init: str = "auto"
+    advi_iterations: int = 20000
     parameterization: str = "noncentered"
     bias_sign: str = "any"
     outcome_bias: bool = False
@@ -80,11 +91,13 @@ class ModelSettings(OptionsMixin):
             raise ConfigError.unknown_keys(self.extra, self.option_names())
         if self.sampler not in SAMPLERS:
             raise ConfigError.invalid_choice("sampler", self.sampler, SAMPLERS)
+        if self.init not in INITS:
+            raise ConfigError.invalid_choice("init", self.init, INITS)
         if self.parameterization not in PARAMETERIZATIONS:
             raise ConfigError.invalid_choice("parameterization", self.parameterization, PARAMETERIZATIONS)
         if self.bias_sign not in BIAS_SIGNS:
             raise ConfigError.invalid_choice("bias_sign", self.bias_sign, BIAS_SIGNS)
-        for name in ("chains", "draws"):
+        for name in ("chains", "draws", "advi_iterations"):
             if int(getattr(self, name)) < 1:
                 raise ConfigError(problem=f"'{name}' must be at least 1", fix=f"set '{name}' to a positive number")
         if self.tune < 0:

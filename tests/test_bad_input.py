@@ -157,3 +157,14 @@ def test_cli_bad_input_exit_2_no_traceback_nothing_written(tmp_path):
     assert "Traceback" not in r.stderr
     assert r.stderr.count("error: ") == 1 and "served_at" in r.stderr and "fix:" in r.stderr
     assert not out.parent.exists() or not any(out.parent.iterdir())
+
+
+def test_invalid_start_lists_the_valid_choices():
+    from liftpool.data_prep.errors import ConfigError
+    from liftpool.models import ModelSettings
+
+    with pytest.raises(ConfigError) as e:
+        ModelSettings(init="advi")
+    assert e.value.problem == ("invalid value 'advi' for 'init'; valid choices are 'auto', 'advi+adapt_diag', "
+                               "'jitter+adapt_diag'")
+    assert e.value.fix == "set 'init' to one of 'auto', 'advi+adapt_diag', 'jitter+adapt_diag'"

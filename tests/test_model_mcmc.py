@@ -41,6 +41,59 @@ def test_single_cell_matches_conjugate_beta(beta_fit):
     assert beta_fit.converged, beta_fit.diagnostics.render()
 
 
+def test_advi_start_matches_conjugate_beta():
+    # the same outside reference (scipy.stats.beta, ratio of independent Beta posteriors) with the chains
+    # started from ADVI: the start changes where sampling begins, never the posterior
+    rows = [("solo", "all", "seen", "buy", "target", 20_000, 500),
+            ("solo", "all", "unseen", "buy", "target", 20_000, 400)]
+    s = ModelSettings(draws=1000, tune=500, seed=2, lift_mean_scale=10.0, init="advi+adapt_diag",
+                      advi_iterations=5000)
+    fit = fit_counts(counts_of(rows), s)
+    assert fit.info["init"] == "advi+adapt_diag"
+    rng = np.random.default_rng(1)
+    ref = (stats.beta(501, 19_501).rvs(200_000, random_state=rng)
+           / stats.beta(401, 19_601).rvs(200_000, random_state=rng) - 1)
+    got = fit.idata.posterior["lift_uncorrected"].values.ravel()
+    np.testing.assert_allclose(np.quantile(got, [0.05, 0.5, 0.95]), np.quantile(ref, [0.05, 0.5, 0.95]),
+                               atol=0.015)
+    assert fit.converged, fit.diagnostics.render()
+
+
+def test_auto_start_follows_model_size(beta_fit):
+    from liftpool.models.fit import AUTO_ADVI_FROM, choose_init
+
+    auto = ModelSettings()
+    assert choose_init(AUTO_ADVI_FROM - 1, auto) == "jitter+adapt_diag"
+    assert choose_init(AUTO_ADVI_FROM, auto) == "advi+adapt_diag"
+    assert choose_init(10, ModelSettings(init="advi+adapt_diag")) == "advi+adapt_diag"
+    assert choose_init(10**6, ModelSettings(init="jitter+adapt_diag")) == "jitter+adapt_diag"
+    assert beta_fit.info["init"] == "jitter+adapt_diag" and beta_fit.info["free_parameters"] == 2  # the baseline and the lift
+
+
+def test_failed_advi_start_falls_back_and_says_so(monkeypatch):
+    import pymc as pm
+
+    real = pm.sample
+    seen = []
+
+    def sample(*args, **kwargs):
+        seen.append(kwargs["init"])
+        if kwargs["init"] == "advi+adapt_diag":
+            raise FloatingPointError("NaN occurred in optimization.\nmore detail")
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(pm, "sample", sample)
+    rows = [("solo", "all", "seen", "buy", "target", 2_000, 50),
+            ("solo", "all", "unseen", "buy", "target", 2_000, 40)]
+    notes = []
+    fit = fit_counts(counts_of(rows), ModelSettings(draws=200, tune=200, chains=2, seed=3, init="advi+adapt_diag"),
+                     progress=notes.append)
+    assert seen == ["advi+adapt_diag", "jitter+adapt_diag"]
+    assert fit.info["init"] == "jitter+adapt_diag"
+    assert fit.info["init_fallback"] == "ADVI failed: NaN occurred in optimization."
+    assert any("starting with jitter+adapt_diag" in n for n in notes)
+
+
 def test_no_placebo_anywhere_refuses_corrected_lift(beta_fit):
     q = set(beta_fit.summary["quantity"])
     assert "lift_uncorrected" in q and "lift" not in q and "p_lift_positive" not in q
