@@ -21,42 +21,39 @@ def counts_of(rows):
     return pd.DataFrame(rows, columns=COLS)
 
 
+BETA_ROWS = [("solo", "all", "seen", "buy", "target", 20_000, 500),
+             ("solo", "all", "unseen", "buy", "target", 20_000, 400)]
+
+
 @pytest.fixture(scope="module")
 def beta_fit():
-    rows = [("solo", "all", "seen", "buy", "target", 20_000, 500),
-            ("solo", "all", "unseen", "buy", "target", 20_000, 400)]
     s = ModelSettings(draws=1000, tune=1000, seed=1, lift_mean_scale=10.0)
-    return fit_counts(counts_of(rows), s)
+    return fit_counts(counts_of(BETA_ROWS), s)
 
 
-def test_single_cell_matches_conjugate_beta(beta_fit):
+def assert_matches_conjugate_beta(fit, seed):
     # one campaign, one cell, no placebo, near-flat priors: the seen/unseen rate ratio matches the
     # ratio of independent Beta(1 + x, 1 + n - x) posteriors (scipy.stats.beta), 200,000 Monte Carlo draws
-    rng = np.random.default_rng(0)
-    ref = (stats.beta(501, 19_501).rvs(200_000, random_state=rng)
-           / stats.beta(401, 19_601).rvs(200_000, random_state=rng) - 1)
-    got = beta_fit.idata.posterior["lift_uncorrected"].values.ravel()
-    np.testing.assert_allclose(np.quantile(got, [0.05, 0.5, 0.95]), np.quantile(ref, [0.05, 0.5, 0.95]),
-                               atol=0.015)
-    assert beta_fit.converged, beta_fit.diagnostics.render()
-
-
-def test_advi_start_matches_conjugate_beta():
-    # the same outside reference (scipy.stats.beta, ratio of independent Beta posteriors) with the chains
-    # started from ADVI: the start changes where sampling begins, never the posterior
-    rows = [("solo", "all", "seen", "buy", "target", 20_000, 500),
-            ("solo", "all", "unseen", "buy", "target", 20_000, 400)]
-    s = ModelSettings(draws=1000, tune=500, seed=2, lift_mean_scale=10.0, init="advi+adapt_diag",
-                      advi_iterations=5000)
-    fit = fit_counts(counts_of(rows), s)
-    assert fit.info["init"] == "advi+adapt_diag"
-    rng = np.random.default_rng(1)
+    rng = np.random.default_rng(seed)
     ref = (stats.beta(501, 19_501).rvs(200_000, random_state=rng)
            / stats.beta(401, 19_601).rvs(200_000, random_state=rng) - 1)
     got = fit.idata.posterior["lift_uncorrected"].values.ravel()
     np.testing.assert_allclose(np.quantile(got, [0.05, 0.5, 0.95]), np.quantile(ref, [0.05, 0.5, 0.95]),
                                atol=0.015)
     assert fit.converged, fit.diagnostics.render()
+
+
+def test_single_cell_matches_conjugate_beta(beta_fit):
+    assert_matches_conjugate_beta(beta_fit, seed=0)
+
+
+def test_advi_start_matches_conjugate_beta():
+    # the chains started from ADVI: the start changes where sampling begins, never the posterior
+    s = ModelSettings(draws=1000, tune=500, seed=2, lift_mean_scale=10.0, init="advi+adapt_diag",
+                      advi_iterations=5000)
+    fit = fit_counts(counts_of(BETA_ROWS), s)
+    assert fit.info["init"] == "advi+adapt_diag"
+    assert_matches_conjugate_beta(fit, seed=1)
 
 
 def test_auto_start_follows_model_size(beta_fit):
