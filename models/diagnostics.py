@@ -13,7 +13,7 @@ from dataclasses import asdict, dataclass, field
 import arviz as az
 import numpy as np
 
-__all__ = ["Check", "Diagnostics", "check_convergence", "RHAT_MAX", "ESS_MIN"]
+__all__ = ["Check", "Diagnostics", "check_convergence", "draws_needed", "RHAT_MAX", "ESS_MIN"]
 
 RHAT_MAX = 1.01
 ESS_MIN = 400
@@ -88,6 +88,22 @@ def _worst(ds, fn) -> tuple[float, str]:
     return (float("nan"), "-") if best_val is None else (best_val, best_name)
 
 
+def draws_needed(draws: int, ess: float, target: float = ESS_MIN) -> int:
+    """Draws per chain that should reach ``target`` ESS, if ESS grows in proportion to the draws.
+
+    A 20% margin is added and the result rounded up to a hundred.  ESS of a stationary chain grows
+    about linearly with its length, so this is an estimate, not a promise.
+    """
+    if not ess > 0:
+        return 0
+    return int(np.ceil(draws * target / ess * 1.2 / 100.0) * 100)
+
+
+def _draws_hint(draws: int, ess: float) -> str:
+    n = draws_needed(draws, ess)
+    return f" (about --draws {n} per chain, from the ESS of {draws} draws)" if n > draws else ""
+
+
 def check_convergence(idata: az.InferenceData, var_names: list[str] | None = None) -> Diagnostics:
     """Rank-normalized R-hat, bulk and tail ESS, and divergences of a NUTS fit."""
     post = idata.posterior
@@ -107,12 +123,14 @@ def check_convergence(idata: az.InferenceData, var_names: list[str] | None = Non
     n_chains = post.sizes["chain"]
     checks = [
         Check("R-hat (rank-normalized)", bool(r_val <= RHAT_MAX) and n_chains > 1, r_val, RHAT_MAX, r_name,
-              "chains disagree: run more tuning and draws (--draws, tune), use at least 4 chains, or check the "
+              "chains disagree: run more tuning and draws (--draws, --tune), use at least 4 chains, or check the "
               "worst parameter's prior and data" if n_chains > 1 else "R-hat needs at least 2 chains: use 4"),
         Check("bulk ESS", bool(b_val >= ESS_MIN), b_val, ESS_MIN, b_name,
-              "too few effective draws for stable means and intervals: increase --draws"),
+              "too few effective draws for stable means and intervals: increase --draws"
+              + _draws_hint(post.sizes["draw"], b_val)),
         Check("tail ESS", bool(t_val >= ESS_MIN), t_val, ESS_MIN, t_name,
-              "too few effective draws in the tails, so interval ends are unstable: increase --draws"),
+              "too few effective draws in the tails, so interval ends are unstable: increase --draws"
+              + _draws_hint(post.sizes["draw"], t_val)),
         Check("divergences after tuning", div == 0, float(div), 0, f"{div} of {post.sizes['draw'] * n_chains}",
               "the sampler hit a region it cannot explore: raise target_accept (e.g. 0.95 or 0.99), switch "
               "parameterization (centered for campaigns with much data), or tighten the spread priors"),

@@ -216,3 +216,24 @@ def test_posterior_predictive_check_covers_observed(demo_fit):
     q = fit.info["prior_predictive"]["lift_prior_quantiles"]
     assert q["q05"] < 0 < q["q95"]  # the priors alone allow a negative or positive lift (weakly informative)
     assert q["q95"] < 5  # ... but not wildly implausible ones
+
+
+def test_ess_advice_says_how_many_draws():
+    import arviz as az
+
+    from liftpool.models.diagnostics import check_convergence, draws_needed
+
+    # an AR(1) chain with coefficient 0.9 has ESS about n (1 - 0.9) / (1 + 0.9) (the standard formula for
+    # the integrated autocorrelation time of an AR(1) process, from memory): 4 chains of 500 draws give
+    # about 105, so about 4 x 400 / 105 x 1.2 = 1,900 draws per chain are suggested
+    rng = np.random.default_rng(4)
+    x = np.zeros((4, 500))
+    for t in range(1, 500):
+        x[:, t] = 0.9 * x[:, t - 1] + rng.standard_normal(4)
+    idata = az.from_dict(posterior={"residual_sd": x}, sample_stats={"diverging": np.zeros((4, 500), bool)})
+    diag = check_convergence(idata)
+    bulk = next(c for c in diag.checks if c.name == "bulk ESS")
+    assert not bulk.passed and 60 < bulk.value < 160
+    assert f"about --draws {draws_needed(500, bulk.value)} per chain, from the ESS of 500 draws" in bulk.advice
+    assert 1_200 <= draws_needed(500, bulk.value) <= 3_500
+    assert draws_needed(500, 800.0) == 300 and draws_needed(500, 0.0) == 0
