@@ -168,9 +168,11 @@ def bench_start(campaigns: int = 40, tune: int = 200, draws: int = 100) -> None:
 
     configure_backend()
     counts = synthetic_counts(campaigns, 24, 6, users_per_cell=400, seed=2)
-    model = build_model(make_design(counts), ModelSettings())
-    n_free = int(sum(np.size(v) for v in model.initial_point().values()))
+    from liftpool.models.fit import free_parameters
+
     s = ModelSettings()
+    model = build_model(make_design(counts), s)
+    n_free = free_parameters(model)
     print(f"start: {campaigns} campaigns x 24 cells x 6 outcomes ({n_free:,} free parameters), one chain, "
           f"{tune} tuning + {draws} draws, target_accept {s.target_accept}", flush=True)
     res = {}

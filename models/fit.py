@@ -29,7 +29,7 @@ from liftpool.models.quick import quick_fit, quick_relative
 from liftpool.models.settings import ModelSettings, default_cores
 from liftpool.models.summary import NEW_CAMPAIGN, PORTFOLIO, summarize_draws
 
-__all__ = ["FitResult", "fit_counts", "load_fit", "package_versions", "choose_init", "AUTO_ADVI_FROM"]
+__all__ = ["FitResult", "fit_counts", "load_fit", "package_versions", "choose_init", "free_parameters", "AUTO_ADVI_FROM"]
 
 #: ``init="auto"`` starts PyMC's NUTS from ADVI from this many free parameters on (docs/performance.md).
 AUTO_ADVI_FROM = 1000
@@ -140,6 +140,11 @@ class FitResult:
         return (f"<div><p>liftpool fit ({escape(self.mode)}; {status}; level {self.settings.level:.0%})</p>"
                 f"<table><tr><th>campaign</th><th>{escape(q)} (median)</th><th>interval</th></tr>{rows}</table>"
                 "<p>Observational estimate, not a randomized test.</p></div>")
+
+
+def free_parameters(model) -> int:
+    """Length of the unconstrained vector NUTS moves in (the model's free parameters)."""
+    return int(sum(np.size(v) for v in model.initial_point().values()))
 
 
 def choose_init(n_free: int, s: ModelSettings) -> str:
@@ -342,7 +347,7 @@ def fit_counts(
         model = build_model(d, s)
         import pymc as pm
 
-        n_free = int(sum(np.size(v) for v in model.initial_point().values()))
+        n_free = free_parameters(model)
         init = choose_init(n_free, s)
         info["free_parameters"] = n_free
         say(f"sampling: {s.chains} chains x ({s.tune} tuning + {s.draws} draws), sampler {s.sampler}, "
