@@ -13,7 +13,7 @@ from dataclasses import asdict, dataclass, field
 import arviz as az
 import numpy as np
 
-__all__ = ["Check", "Diagnostics", "check_convergence", "draws_needed", "RHAT_MAX", "ESS_MIN"]
+__all__ = ["Check", "Diagnostics", "check_convergence", "divergence_advice", "draws_needed", "RHAT_MAX", "ESS_MIN"]
 
 RHAT_MAX = 1.01
 ESS_MIN = 400
@@ -104,8 +104,55 @@ def _draws_hint(draws: int, ess: float) -> str:
     return f" (about --draws {n} per chain, from the ESS of {draws} draws)" if n > draws else ""
 
 
-def check_convergence(idata: az.InferenceData, var_names: list[str] | None = None) -> Diagnostics:
-    """Rank-normalized R-hat, bulk and tail ESS, and divergences of a NUTS fit."""
+#: Where the model cannot be helped by the settings, the advice says what to send.
+REPORT_ADVICE = ("the settings cannot fix this: please send a bug report with the fit folder's fit.json "
+                 "(it holds the settings, the data sizes and these checks, no user data)")
+
+
+def divergence_advice(settings) -> str:
+    """What to do about divergences, given what the fit already used (never a step already taken)."""
+    if settings is None:
+        return "raise target_accept (--target-accept 0.95), or tighten the spread priors"
+    steps = []
+    ta = float(settings.target_accept)
+    if ta < 0.95:
+        steps.append(f"raise target_accept from {ta:g} to 0.95 (--target-accept 0.95)")
+    elif ta < 0.99:
+        steps.append(f"raise target_accept from {ta:g} to 0.99 (--target-accept 0.99)")
+    if getattr(settings, "likelihood", "conditional") == "binomial":
+        steps.append("use the default conditional likelihood (--likelihood conditional)")
+    if not steps:
+        return f"target_accept is already {ta:g}; " + REPORT_ADVICE
+    return "; or ".join(steps)
+
+
+def _rhat_advice(settings, n_chains: int) -> str:
+    if n_chains < 2:
+        return "R-hat needs at least 2 chains: use 4 (--chains 4)"
+    if settings is None:
+        return "chains disagree: run more tuning and draws (--tune, --draws), or check the worst parameter"
+    steps = []
+    if settings.tune < 2000:
+        steps.append(f"more tuning (--tune {max(2000, 2 * settings.tune)}, from {settings.tune})")
+    if settings.draws < 4000:
+        steps.append(f"more draws (--draws {max(4000, 2 * settings.draws)}, from {settings.draws})")
+    if settings.chains < 4:
+        steps.append(f"4 chains (--chains 4, from {settings.chains})")
+    if not steps:
+        return "chains disagree after long runs; " + REPORT_ADVICE
+    return "chains disagree: " + ", ".join(steps)
+
+
+def check_convergence(idata: az.InferenceData, var_names: list[str] | None = None, settings=None) -> Diagnostics:
+    """Rank-normalized R-hat, bulk and tail ESS, and divergences of a NUTS fit.
+
+    Parameters
+    ----------
+    idata : InferenceData
+    var_names : list of str, optional
+    settings : ModelSettings, optional
+        The fit's own settings: the advice never repeats a step the fit already took.
+    """
     post = idata.posterior
     if var_names:
         post = post[[v for v in var_names if v in post]]
@@ -123,8 +170,7 @@ def check_convergence(idata: az.InferenceData, var_names: list[str] | None = Non
     n_chains = post.sizes["chain"]
     checks = [
         Check("R-hat (rank-normalized)", bool(r_val <= RHAT_MAX) and n_chains > 1, r_val, RHAT_MAX, r_name,
-              "chains disagree: run more tuning and draws (--draws, --tune), use at least 4 chains, or check the "
-              "worst parameter's prior and data" if n_chains > 1 else "R-hat needs at least 2 chains: use 4"),
+              _rhat_advice(settings, n_chains)),
         Check("bulk ESS", bool(b_val >= ESS_MIN), b_val, ESS_MIN, b_name,
               "too few effective draws for stable means and intervals: increase --draws"
               + _draws_hint(post.sizes["draw"], b_val)),
@@ -132,7 +178,6 @@ def check_convergence(idata: az.InferenceData, var_names: list[str] | None = Non
               "too few effective draws in the tails, so interval ends are unstable: increase --draws"
               + _draws_hint(post.sizes["draw"], t_val)),
         Check("divergences after tuning", div == 0, float(div), 0, f"{div} of {post.sizes['draw'] * n_chains}",
-              "the sampler hit a region it cannot explore: raise target_accept (e.g. 0.95 or 0.99), switch "
-              "parameterization (centered for campaigns with much data), or tighten the spread priors"),
+              "the sampler hit a region it cannot explore: " + divergence_advice(settings)),
     ]
     return Diagnostics(checks=checks, method="nuts")

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from liftpool.data_prep.errors import ConfigError, InputError, LiftpoolError
 
-__all__ = ["FitError", "NotConvergedError", "ConfigError", "InputError", "LiftpoolError"]
+__all__ = ["FitError", "NotConvergedError", "ConfigError", "InputError", "LiftpoolError", "LiftpoolWarning"]
 
 
 class FitError(LiftpoolError):
@@ -17,3 +17,7 @@ class NotConvergedError(FitError):
     """The fit failed its convergence checks (raised only when asked to be strict)."""
 
     exit_code = 3
+
+
+class LiftpoolWarning(UserWarning):
+    """A result that needs the reader's attention (a fit that did not converge, a model flag)."""

@@ -11,6 +11,7 @@ import datetime as _dt
 import json
 import os
 import time
+import warnings
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -22,15 +23,24 @@ import xarray as xr
 
 from liftpool.data_prep.errors import InputError
 from liftpool.data_prep.io import atomic_folder, write_json
+from liftpool.models.completion import complete_draws
+from liftpool.models.conditional import build_curves, cell_tables
 from liftpool.models.design import CampaignFlags, Design, make_design
 from liftpool.models.diagnostics import Diagnostics, check_convergence
-from liftpool.models.errors import FitError
+from liftpool.models.errors import FitError, LiftpoolWarning
+from liftpool.models.gaussian import gaussian_posterior
 from liftpool.models.quick import quick_fit, quick_relative
 from liftpool.models.settings import ModelSettings, default_cores
 from liftpool.models.summary import NEW_CAMPAIGN, PORTFOLIO, summarize_draws
 
 __all__ = ["FitResult", "fit_counts", "load_fit", "package_versions", "choose_init", "free_parameters", "AUTO_ADVI_FROM"]
 
+#: Draws of the quick mode.
+QUICK_DRAWS = 4000
+#: What the convergence checks look at: the sampled core and the reported quantities.
+CHECKED_VARS = ("bias_mean", "bias_sd", "residual_sd", "lift_mean", "lift_sd", "group_sd", "outcome_bias_sd",
+                "bias", "target_excess", "lift_logodds", "bias_target", "lift", "lift_uncorrected",
+                "incremental_conversions")
 #: ``init="auto"`` starts PyMC's NUTS from ADVI from this many free parameters on (docs/performance.md).
 AUTO_ADVI_FROM = 1000
 
@@ -278,6 +288,216 @@ def _posterior_quantities(d: Design, post: xr.Dataset, corrected: bool) -> dict[
     return q
 
 
+
+def _run_sampler(model, s: ModelSettings, info: dict, say, progressbar: bool, init: str, **extra) -> az.InferenceData:
+    """pm.sample with the settings; a Ctrl-C or a partial trace is never a fit."""
+    import pymc as pm
+
+    def run(init: str) -> az.InferenceData:
+        with model:
+            return pm.sample(draws=s.draws, tune=s.tune, chains=s.chains,
+                             cores=min(s.chains, default_cores()), random_seed=s.seed,
+                             target_accept=s.target_accept, nuts_sampler=s.sampler, init=init,
+                             n_init=s.advi_iterations, progressbar=progressbar,
+                             compute_convergence_checks=False, **extra)
+
+    with _interrupt_watch() as interrupted:
+        try:
+            try:
+                idata = run(init)
+            except FloatingPointError as exc:
+                if init != "advi+adapt_diag" or interrupted():
+                    raise
+                # ADVI's optimisation met a NaN: start the plain way instead, and say so
+                say(f"ADVI start failed ({str(exc).splitlines()[0]}); starting with jitter+adapt_diag")
+                info["init_fallback"] = f"ADVI failed: {str(exc).splitlines()[0]}"
+                init = "jitter+adapt_diag"
+                extra.pop("initvals", None)
+                idata = run(init)
+        except Exception as exc:  # noqa: BLE001 - surfaced as a FitError with the cause
+            if interrupted():
+                raise KeyboardInterrupt("sampling was interrupted") from None
+            raise FitError(f"sampling failed: {type(exc).__name__}: {exc}") from exc
+        if interrupted():
+            raise KeyboardInterrupt("sampling was interrupted")
+    if s.sampler == "pymc":
+        info["init"] = init
+    got = idata.posterior.sizes
+    if got["chain"] != s.chains or got["draw"] != s.draws:
+        # PyMC returns what it has when interrupted; a partial trace is never a fit
+        raise KeyboardInterrupt("sampling was interrupted before all draws were made")
+    return idata
+
+
+def _sample_binomial(d: Design, s: ModelSettings, info: dict, say, progressbar: bool, t0: float):
+    """The reference model: a Binomial likelihood with every cell baseline sampled."""
+    from liftpool.models.backend import configure_backend
+    from liftpool.models.hierarchical import LARGE_VARS, build_model
+
+    info["backend"] = configure_backend()
+    say(f"building the Binomial model: {d.n_campaigns} campaigns, {len(d.pair_campaign)} campaign-outcome "
+        f"pairs, {len(d.stratum_pair)} strata, {len(d.users)} count rows")
+    model = build_model(d, s)
+    n_free = free_parameters(model)
+    init = choose_init(n_free, s)
+    info["free_parameters"] = n_free
+    say(f"sampling: {s.chains} chains x ({s.tune} tuning + {s.draws} draws), seed {s.seed}")
+    idata = _run_sampler(model, s, info, say, progressbar, init)
+    info["sampling_seconds"] = round(time.perf_counter() - t0, 2)
+    say("checking convergence")
+    free = [v.name for v in model.free_RVs]
+    diag = check_convergence(idata, var_names=free + ["lift", "lift_uncorrected", "bias_target",
+                                                      "incremental_conversions"], settings=s)
+    from liftpool.models.predictive import posterior_predictive_check, prior_predictive_lift
+
+    predictive = posterior_predictive_check(d, model, idata, s.level, s.seed)
+    info["posterior_predictive"] = {"groups": int(len(predictive)), "inside_interval": float(predictive["inside"].mean()),
+                                    "level": s.level}
+    info["prior_predictive"] = prior_predictive_lift(model, s.seed)
+    idata.posterior = idata.posterior.drop_vars([v for v in LARGE_VARS if v in idata.posterior])
+    return idata, diag, predictive, model
+
+
+def _initial_points(qcore: dict, shares, model, chains: int) -> list[dict]:
+    """One start per chain: a quick-mode draw, moved into the sampler's (partially centred) variables."""
+    w_b, w_x = shares
+    names = {v.name for v in model.free_RVs}
+    n = qcore["target_excess"].shape[0]
+    out = []
+    for c in range(chains):
+        i = (c * 9973 + 17) % n
+        pt_ = {}
+        for k in ("bias_mean", "bias_sd", "residual_sd", "lift_mean", "lift_sd"):
+            if k in names:
+                pt_[k] = max(float(qcore[k][i]), 1e-3) if k.endswith("_sd") else float(qcore[k][i])
+        mu_l = pt_.get("lift_mean", 0.0)
+        if "target_excess_raw" in names:
+            sd = np.sqrt(pt_.get("lift_sd", qcore["lift_mean_scale"]) ** 2 + pt_.get("residual_sd", 0.0) ** 2)
+            x = qcore["target_excess"][i]
+            pt_["target_excess_raw"] = w_x * mu_l + (x - mu_l) / sd ** (1.0 - w_x)
+        if "bias_raw" in names:
+            mu_b = pt_.get("bias_mean", 0.0)
+            sd = pt_.get("bias_sd", qcore.get("bias_sd_fixed", None) or 1.0)
+            b = qcore["bias"][i]
+            pt_["bias_raw"] = w_b * mu_b + (b - mu_b) / sd ** (1.0 - w_b)
+        out.append(pt_)
+    return out
+
+
+def _sample_conditional(d: Design, curves, qcore: dict, s: ModelSettings, info: dict, say, progressbar: bool,
+                        t0: float):
+    """The default model: the conditional likelihood, placebo residuals integrated, partial centring."""
+    from liftpool.models.backend import configure_backend
+    from liftpool.models.conditional_model import (
+        CORE_VARS,
+        build_conditional_model,
+        information_shares,
+    )
+
+    info["backend"] = configure_backend()
+    spreads = {k: float(np.mean(qcore[k])) for k in ("bias_sd", "residual_sd", "lift_sd")}
+    shares = information_shares(d, curves, spreads, s)
+    model = build_conditional_model(d, curves, s, shares)
+    if d.n_campaigns == 1:
+        qcore = {**qcore, "bias_sd_fixed": s.bias_mean_scale}
+    n_free = free_parameters(model)
+    info["free_parameters"] = n_free
+    info["centring"] = {"bias_mean_weight": float(np.mean(shares[0])),
+                        "target_excess_mean_weight": float(np.mean(shares[1]))}
+    say(f"sampling: {s.chains} chains x ({s.tune} tuning + {s.draws} draws), {n_free:,} parameters, seed {s.seed}")
+    extra = {}
+    init = s.init
+    if s.sampler == "pymc":
+        if init == "auto":
+            init = "adapt_diag"
+            extra["initvals"] = _initial_points(qcore, shares, model, s.chains)
+    idata = _run_sampler(model, s, info, say, progressbar, init, **extra)
+    info["sampling_seconds"] = round(time.perf_counter() - t0, 2)
+    post = idata.posterior
+    core = {k: post[k].values for k in CORE_VARS if k in post}
+    core.update(corrected=not d.flags.no_placebo_anywhere, single=d.n_campaigns == 1,
+                lift_mean_scale=s.lift_mean_scale)
+    return idata, None, model, core
+
+
+#: Reported per-campaign and per-pair quantities, by dimension.
+_CAMPAIGN_VARS = ("lift_logodds", "bias_target", "lift", "lift_uncorrected", "incremental_conversions",
+                  "counterfactual_conversions")
+
+
+def _posterior_dataset(d: Design, core: dict, done: dict, chains: int, draws: int) -> xr.Dataset:
+    """The stored posterior: the core draws and their completion, over (chain, draw, ...)."""
+    coords = {"chain": np.arange(chains), "draw": np.arange(draws), "campaign": d.campaigns,
+              "pair": d.pair_labels(), "outcome": d.outcomes}
+    if d.groups:
+        coords["group"] = d.groups
+    data = {}
+    dims_of = {"bias": ("campaign",), "target_excess": ("campaign",), "group_effect": ("group",),
+               "outcome_bias": ("outcome",)}
+    for k, v in core.items():
+        if not isinstance(v, np.ndarray) or k.endswith("_fixed"):
+            continue
+        data[k] = (("chain", "draw") + dims_of.get(k, ()), v.reshape((chains, draws) + v.shape[2:]))
+    for k in _CAMPAIGN_VARS:
+        data[k] = (("chain", "draw", "campaign"), done[k].reshape(chains, draws, -1))
+    data["effect"] = (("chain", "draw", "pair"), done["effect"].reshape(chains, draws, -1).astype(np.float32))
+    return xr.Dataset(data, coords=coords)
+
+
+def conditional_predictive_check(d: Design, cells, curves, post: xr.Dataset, level: float, seed: int,
+                                 n_draws: int = 1000) -> pd.DataFrame:
+    """Observed seen conversions of each (campaign, outcome) against their posterior predictive, given the cells' totals.
+
+    Given a cell's margins its seen count has mean ``x1 - l'(psi)`` and variance ``-l''(psi)``
+    summed over the pair's cells (the exact moments of Fisher's noncentral hypergeometric); the
+    predictive total is drawn as a normal with those moments at each posterior draw of the effect.
+
+    Returns
+    -------
+    DataFrame
+        ``campaign, outcome, arm, observed, predicted_median, lower, upper, inside, p_value`` (arm "seen",
+        conditional on each cell's total conversions).
+    """
+    rng = np.random.default_rng(seed)
+    eff = post["effect"].values.reshape(-1, post.sizes["pair"]).astype(float)
+    eff = eff[np.linspace(0, eff.shape[0] - 1, min(n_draws, eff.shape[0])).astype(int)]
+    x1 = np.bincount(cells.pair[cells.informative], weights=cells.x1[cells.informative], minlength=eff.shape[1])
+    lo_fixed = np.bincount(cells.pair[~cells.informative], weights=cells.x1[~cells.informative],
+                           minlength=eff.shape[1])
+    a = (1 - level) / 2
+    rows = []
+    for p in range(eff.shape[1]):
+        if not curves.informative[p] or not np.all(np.isfinite(eff[:, p])):
+            continue
+        _, g, h = curves.evaluate(eff[:, p], np.full(eff.shape[0], p), derivatives=True)
+        mean, var = x1[p] - g, np.maximum(-h, 0.0)
+        sim = rng.normal(mean, np.sqrt(var)) + lo_fixed[p]
+        obs = float(x1[p] + lo_fixed[p])
+        lo, med, hi = np.quantile(sim, [a, 0.5, 1 - a])
+        rows.append({"campaign": d.campaigns[d.pair_campaign[p]], "outcome": d.outcomes[d.pair_outcome[p]],
+                     "arm": "seen", "observed": int(obs), "predicted_median": float(med), "lower": float(lo),
+                     "upper": float(hi), "inside": bool(lo - 0.5 <= obs <= hi + 0.5),
+                     "p_value": float(np.mean(sim >= obs))})
+    return pd.DataFrame(rows, columns=["campaign", "outcome", "arm", "observed", "predicted_median", "lower",
+                                       "upper", "inside", "p_value"])
+
+
+def prior_predictive_lift_numpy(d: Design, s: ModelSettings, n_draws: int = 1000) -> dict:
+    """What the priors alone imply for the relative lift (a check that they are weakly informative)."""
+    rng = np.random.default_rng(s.seed)
+    if d.n_campaigns == 1:
+        lift = rng.normal(0.0, s.lift_mean_scale, (n_draws, 1))
+    else:
+        mu = rng.normal(0.0, s.lift_mean_scale, n_draws)
+        sd = np.abs(rng.normal(0.0, s.lift_sd_scale, n_draws))
+        lift = rng.normal(mu, sd)[:, None] * np.ones((1, d.n_campaigns))
+    rel, _, _ = quick_relative(d, lift)
+    x = rel.ravel()
+    x = x[np.isfinite(x)]
+    q = np.quantile(x, [0.05, 0.25, 0.5, 0.75, 0.95])
+    return {"lift_prior_quantiles": {f"q{int(p * 100):02d}": float(v) for p, v in zip((0.05, 0.25, 0.5, 0.75, 0.95),
+                                                                                      q, strict=True)}}
+
 def fit_counts(
     counts: pd.DataFrame,
     settings: ModelSettings | None = None,
@@ -313,10 +533,10 @@ def fit_counts(
     corrected = not d.flags.no_placebo_anywhere
     info = {"created": _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"), "versions": package_versions(),
             "campaigns": d.n_campaigns, "rows": int(len(d.users)), "strata": int(len(d.stratum_pair)),
-            "pairs": int(len(d.pair_campaign))}
+            "pairs": int(len(d.pair_campaign)), "likelihood": s.likelihood}
     t0 = time.perf_counter()
     predictive = None
-    if quick:
+    if quick and s.likelihood == "binomial":
         say("quick mode: stratified estimates and exact pooling")
         r = quick_fit(d, s)
         n = r.lift_logodds.shape[0]
@@ -331,81 +551,66 @@ def fit_counts(
         if r.bias_mean is not None:
             data["bias_mean"] = (("chain", "draw"), r.bias_mean[:n][None])
             data["bias_sd"] = (("chain", "draw"), r.bias_sd[:n][None])
-        post = xr.Dataset(data, coords=coords)
-        idata = az.InferenceData(posterior=post)
+        idata = az.InferenceData(posterior=xr.Dataset(data, coords=coords))
         diag = Diagnostics(method="exact grid", note="quick mode: exact grid posterior with independent draws; "
                            "no sampler, so R-hat, ESS and divergences do not apply")
-        new_lift = np.expm1(r.lift_new)
         info["backend"] = "numpy"
+        core = None
+    elif s.likelihood == "binomial":
+        idata, diag, predictive, model = _sample_binomial(d, s, info, say, progressbar, t0)
+        core = None
     else:
-        from liftpool.models.backend import configure_backend
-        from liftpool.models.hierarchical import LARGE_VARS, build_model
-
-        info["backend"] = configure_backend()
-        say(f"building the model: {d.n_campaigns} campaigns, {len(d.pair_campaign)} campaign-outcome pairs, "
-            f"{len(d.stratum_pair)} strata, {len(d.users)} count rows")
-        model = build_model(d, s)
-        import pymc as pm
-
-        n_free = free_parameters(model)
-        init = choose_init(n_free, s)
-        info["free_parameters"] = n_free
-        say(f"sampling: {s.chains} chains x ({s.tune} tuning + {s.draws} draws), sampler {s.sampler}, "
-            f"seed {s.seed}" + (f", start {init} ({n_free:,} free parameters)" if s.sampler == "pymc" else ""))
-
-        def run(init: str) -> az.InferenceData:
-            with model:
-                return pm.sample(draws=s.draws, tune=s.tune, chains=s.chains,
-                                 cores=min(s.chains, default_cores()), random_seed=s.seed,
-                                 target_accept=s.target_accept, nuts_sampler=s.sampler, init=init,
-                                 n_init=s.advi_iterations, progressbar=progressbar,
-                                 compute_convergence_checks=False)
-
-        with _interrupt_watch() as interrupted:
-            try:
-                try:
-                    idata = run(init)
-                except FloatingPointError as exc:
-                    if init != "advi+adapt_diag" or interrupted():
-                        raise
-                    # ADVI's optimisation met a NaN: start the plain way instead, and say so
-                    say(f"ADVI start failed ({str(exc).splitlines()[0]}); starting with jitter+adapt_diag")
-                    info["init_fallback"] = f"ADVI failed: {str(exc).splitlines()[0]}"
-                    init = "jitter+adapt_diag"
-                    idata = run(init)
-            except Exception as exc:  # noqa: BLE001 - surfaced as a FitError with the cause
-                if interrupted():
-                    raise KeyboardInterrupt("sampling was interrupted") from None
-                raise FitError(f"sampling failed: {type(exc).__name__}: {exc}") from exc
-            if interrupted():
-                raise KeyboardInterrupt("sampling was interrupted")
-        if s.sampler == "pymc":
-            info["init"] = init
-        got = idata.posterior.sizes
-        if got["chain"] != s.chains or got["draw"] != s.draws:
-            # PyMC returns what it has when interrupted; a partial trace is never a fit
-            raise KeyboardInterrupt("sampling was interrupted before all draws were made")
-        info["sampling_seconds"] = round(time.perf_counter() - t0, 2)
-        say("checking convergence")
-        free = [v.name for v in model.free_RVs]
-        diag = check_convergence(idata, var_names=free + [v for v in ("lift", "lift_uncorrected", "bias_target",
-                                                                      "incremental_conversions")])
-        say("prior and posterior predictive checks")
-        from liftpool.models.predictive import posterior_predictive_check, prior_predictive_lift
-
-        predictive = posterior_predictive_check(d, model, idata, s.level, s.seed)
-        info["posterior_predictive"] = {"groups": int(len(predictive)),
-                                        "inside_interval": float(predictive["inside"].mean()),
-                                        "level": s.level}
-        info["prior_predictive"] = prior_predictive_lift(model, s.seed)
-        idata.posterior = idata.posterior.drop_vars([v for v in LARGE_VARS if v in idata.posterior])
-        post = idata.posterior
-        rng_new = np.random.default_rng(s.seed + 2)
-        if "lift_mean" in post:
-            ln = post["lift_mean"].values + post["lift_sd"].values * rng_new.standard_normal(post["lift_mean"].shape)
-            new_lift = np.expm1(ln).ravel()
-        else:  # a single campaign: no population to predict from
-            new_lift = None
+        say("conditional likelihood curves of every campaign-outcome pair")
+        cells = cell_tables(d)
+        curves = build_curves(cells, len(d.pair_campaign))
+        info["curve_seconds"] = round(time.perf_counter() - t0, 2)
+        se = np.where(curves.informative, 1.0 / np.sqrt(np.maximum(curves.information, 1e-300)), np.inf)
+        n_quick = QUICK_DRAWS if quick else max(QUICK_DRAWS, s.chains * 50)
+        say("quick mode: the same structure on Gaussian approximations of the curves" if quick else
+            "quick-mode pass: starting points and centring weights for the sampler")
+        qcore = gaussian_posterior(curves.mode, se, curves.informative, d.pair_campaign, d.target_pair(), s,
+                                   n_quick, np.random.default_rng(s.seed))
+        qcore["lift_mean_scale"] = s.lift_mean_scale
+        if quick:
+            core = {k: (v[None] if isinstance(v, np.ndarray) else v) for k, v in qcore.items()}
+            diag = Diagnostics(method="exact grid", note="quick mode: Gaussian approximations of the curves, exact "
+                               "grid posterior of the spreads, independent draws; no sampler, so R-hat, ESS and "
+                               "divergences do not apply")
+            info["backend"] = "numpy"
+            if d.groups or s.outcome_bias or s.bias_sign != "any":
+                info["quick_ignores"] = [n for n, on in (("groups", bool(d.groups)), ("outcome_bias", s.outcome_bias),
+                                                         ("bias_sign", s.bias_sign != "any")) if on]
+            idata = None
+        else:
+            idata, diag, model, core = _sample_conditional(d, curves, qcore, s, info, say, progressbar, t0)
+    if core is not None:
+        chains, draws = core["target_excess"].shape[:2]
+        flat = {k: (v.reshape((chains * draws,) + v.shape[2:]) if isinstance(v, np.ndarray) else v)
+                for k, v in core.items()}
+        done = complete_draws(d, cells, curves, flat, rng)
+        post = _posterior_dataset(d, core, done, chains, draws)
+        if idata is None:
+            idata = az.InferenceData(posterior=post)
+        else:
+            idata.posterior = post
+        if not quick:
+            say("checking convergence")
+            diag = check_convergence(idata, var_names=[v for v in CHECKED_VARS if v in post], settings=s)
+            say("prior and posterior predictive checks")
+            predictive = conditional_predictive_check(d, cells, curves, post, s.level, s.seed)
+            info["posterior_predictive"] = {"groups": int(len(predictive)),
+                                            "inside_interval": float(predictive["inside"].mean()),
+                                            "level": s.level}
+        info["prior_predictive"] = prior_predictive_lift_numpy(d, s)
+    post = idata.posterior
+    rng_new = np.random.default_rng(s.seed + 2)
+    if "lift_mean" in post:
+        ln = post["lift_mean"].values + post["lift_sd"].values * rng_new.standard_normal(post["lift_mean"].shape)
+        if "group_sd" in post:
+            ln = ln + post["group_sd"].values * rng_new.standard_normal(post["lift_mean"].shape)
+        new_lift = np.expm1(ln).ravel()
+    else:  # a single campaign: no population to predict from
+        new_lift = None
     _add_data(idata, d)
     info["counts_sha256"] = counts_hash(d.counts)
     post = idata.posterior
@@ -428,6 +633,9 @@ def fit_counts(
             pooled[NEW_CAMPAIGN] = {"lift": new_lift}
     summary = summarize_draws(per, pooled, s.level)
     info["seconds"] = round(time.perf_counter() - t0, 2)
+    if not quick and not diag.converged:
+        warnings.warn("the fit did not converge: " + "; ".join(c.name for c in diag.failures)
+                      + " (see fit.diagnostics for what to do)", LiftpoolWarning, stacklevel=2)
     idata.posterior.attrs.update({"liftpool_mode": "quick" if quick else "full", "seed": s.seed,
                                   "corrected": int(corrected)})
     return FitResult(idata=idata, summary=summary, diagnostics=diag, flags=d.flags, settings=s,

@@ -1,0 +1,164 @@
+"""From the sampled (or quick-mode) core of the posterior to every reported quantity, draw by draw.
+
+Both modes produce the same core: the spreads and means, each campaign's bias ``b_c`` and its
+target excess ``x_c`` (the target's seen/unseen log odds ratio beyond the bias: lift plus the
+target's own residual).  This module completes each draw, so both modes report the same
+quantities with the same meaning:
+
+* the lift (log odds) from its exact conditional normal given ``x_c`` (a data-free split of
+  ``x_c`` into lift and residual, see docs/model.md);
+* each placebo's effect ``b_c + r_p`` with ``r_p`` from the Gaussian approximation of its
+  conditional given ``b_c`` and ``residual_sd`` (for the placebo table only);
+* rates: each target cell's seen-arm log odds ``gamma`` from its conditional given the sampled
+  effect and the cell's counts (a Binomial posterior with a weak prior on the cell baseline,
+  by a Laplace approximation whose mode is refined by one Newton step at every draw), then the
+  relative lift among seen users, the lift before bias correction, incremental and
+  counterfactual conversions.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy.special import expit, logit
+
+__all__ = ["complete_draws", "split_lift", "BASELINE_PRIOR_SD", "target_cells"]
+
+#: Prior sd (log odds) of a cell's baseline around its pair's pooled unseen rate.
+BASELINE_PRIOR_SD = 2.0
+
+
+def split_lift(x, centre, lift_sd, residual_sd, z):
+    """The lift given the target excess ``x = lift + residual`` (exact conditional normal).
+
+    ``lift ~ N(centre, lift_sd)`` and ``residual ~ N(0, residual_sd)`` a priori; the data see only
+    their sum, so ``lift | x ~ N(centre + k (x - centre), k residual_sd^2)``, ``k = lift_sd^2 /
+    (lift_sd^2 + residual_sd^2)``.  ``z`` is a standard normal draw.
+    """
+    tot = lift_sd**2 + residual_sd**2
+    k = np.where(tot > 0, lift_sd**2 / np.where(tot > 0, tot, 1.0), 1.0)
+    return centre + k * (x - centre) + np.sqrt(k) * residual_sd * z
+
+
+def target_cells(design, cells) -> dict[str, np.ndarray]:
+    """The target strata of every campaign with the counts the rate completion needs."""
+    tp = design.target_pair()
+    is_t = np.isin(cells.pair, tp)
+    idx = np.flatnonzero(is_t & (cells.n1 > 0))
+    pair_to_camp = np.full(len(design.pair_campaign), -1)
+    pair_to_camp[tp] = np.arange(tp.size)
+    camp = pair_to_camp[cells.pair[idx]]
+    # prior centre of each cell's baseline: its pair's pooled unseen rate (a shift, not information)
+    P = len(design.pair_campaign)
+    x0p = np.bincount(cells.pair, weights=cells.x0, minlength=P)
+    n0p = np.bincount(cells.pair, weights=cells.n0, minlength=P)
+    mu0 = logit((x0p + 0.5) / (n0p + 1.0))[cells.pair[idx]]
+    return {"campaign": camp, "n1": cells.n1[idx].astype(float), "n0": cells.n0[idx].astype(float),
+            "x1": cells.x1[idx].astype(float), "x0": cells.x0[idx].astype(float), "mu0": mu0}
+
+
+def _gamma_mode(t, psi, gamma, steps):
+    """Newton steps toward the mode of the seen-arm log odds given ``psi`` (broadcast)."""
+    v_prior = BASELINE_PRIOR_SD**2
+    for _ in range(steps):
+        p1, p0 = expit(gamma), expit(gamma - psi)
+        grad = t["x1"] - t["n1"] * p1 + t["x0"] - t["n0"] * p0 - (gamma - psi - t["mu0"]) / v_prior
+        curv = t["n1"] * p1 * (1 - p1) + t["n0"] * p0 * (1 - p0) + 1.0 / v_prior
+        gamma = gamma + grad / curv
+    return gamma, curv
+
+
+def rate_quantities(t, C, psi, lift, rng, chunk=400):
+    """Relative lift, uncorrected lift, incremental and counterfactual conversions among seen users.
+
+    Parameters
+    ----------
+    t : dict
+        :func:`target_cells`.
+    C : int
+    psi, lift : ndarray, shape (D, C)
+        The target's total seen/unseen log odds ratio and the lift (log odds), per draw.
+    """
+    D = psi.shape[0]
+    k = t["campaign"]
+    # start: the mode at each campaign's mean effect, and its slope in psi (implicit derivative)
+    psi0 = psi.mean(axis=0)[k]
+    g0 = logit((t["x1"] + 0.5) / (t["n1"] + 1.0))
+    g0, _ = _gamma_mode(t, psi0, g0, 30)
+    p1, p0 = expit(g0), expit(g0 - psi0)
+    a0 = t["n0"] * p0 * (1 - p0) + 1.0 / BASELINE_PRIOR_SD**2
+    slope = a0 / (t["n1"] * p1 * (1 - p1) + a0)
+    out = {q: np.empty((D, C)) for q in ("seen", "without", "unseen")}
+    for lo in range(0, D, chunk):
+        s = slice(lo, min(D, lo + chunk))
+        ps, ls = psi[s][:, k], lift[s][:, k]
+        gam, curv = _gamma_mode(t, ps, g0 + slope * (ps - psi0), 1)
+        gam = gam + rng.standard_normal(gam.shape) / np.sqrt(curv)
+        w = t["n1"]
+        for name, val in (("seen", expit(gam)), ("without", expit(gam - ls)), ("unseen", expit(gam - ps))):
+            e = np.zeros((gam.shape[0], C))
+            np.add.at(e.T, k, (w * val).T)
+            out[name][s] = e
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return {"lift": out["seen"] / out["without"] - 1.0, "lift_uncorrected": out["seen"] / out["unseen"] - 1.0,
+                "incremental_conversions": out["seen"] - out["without"],
+                "counterfactual_conversions": out["without"]}
+
+
+def complete_draws(design, cells, curves, core: dict, rng: np.random.Generator) -> dict[str, np.ndarray]:
+    """Every reported quantity from the core draws (each array with draws on the first axis).
+
+    Parameters
+    ----------
+    design : Design
+    cells : CellTable
+    curves : CurveSet
+    core : dict
+        ``target_excess, bias`` (D, C); ``lift_mean, lift_sd, residual_sd`` (D,) where sampled;
+        optional ``group_effect`` (D, G) and ``outcome_bias`` (D, O); flags ``corrected``, ``single``
+        and the fixed prior scales ``lift_mean_scale`` (used for a single campaign).
+
+    Returns
+    -------
+    dict
+        ``lift_logodds, bias_target, lift, lift_uncorrected, incremental_conversions,
+        counterfactual_conversions`` (D, C) and ``effect`` (D, P).
+    """
+    x = core["target_excess"]
+    D, C = x.shape
+    corrected, single = core["corrected"], core["single"]
+    if single:
+        centre = np.zeros((D, C))
+        lift_sd = np.full(D, core["lift_mean_scale"])
+    else:
+        centre = np.repeat(core["lift_mean"][:, None], C, axis=1)
+        lift_sd = core["lift_sd"]
+        if "group_effect" in core:
+            g = design.campaign_group
+            centre = centre + np.where(g >= 0, core["group_effect"][:, np.maximum(g, 0)], 0.0)
+    if corrected:
+        sr = core["residual_sd"]
+        lift = split_lift(x, centre, lift_sd[:, None], sr[:, None], rng.standard_normal((D, C)))
+        eta = core["bias"][:, design.pair_campaign]
+        if "outcome_bias" in core:
+            eta = eta + core["outcome_bias"][:, design.pair_outcome]
+    else:
+        lift = x
+        eta = np.zeros((D, len(design.pair_campaign)))
+    tp = design.target_pair()
+    psi_t = eta[:, tp] + x
+    out = {"lift_logodds": lift, "bias_target": psi_t - lift}
+    # placebo effects: the Gaussian approximation of r_p | b_c, residual_sd, data
+    effect = np.empty_like(eta)
+    effect[:, tp] = psi_t
+    pl = np.flatnonzero(~np.isin(np.arange(eta.shape[1]), tp))
+    if pl.size and corrected:
+        info = np.where(curves.informative[pl], curves.information[pl], 0.0)
+        sr2 = (core["residual_sd"] ** 2)[:, None]
+        prec = info + 1.0 / sr2
+        mean = info * (curves.mode[pl] - eta[:, pl]) / prec
+        effect[:, pl] = eta[:, pl] + mean + rng.standard_normal(mean.shape) / np.sqrt(prec)
+    elif pl.size:
+        effect[:, pl] = np.nan
+    out["effect"] = effect
+    out.update(rate_quantities(target_cells(design, cells), C, psi_t, lift, rng))
+    return out
