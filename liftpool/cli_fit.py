@@ -17,10 +17,13 @@ def model_args(p: argparse.ArgumentParser) -> None:
     g.add_argument("--seed", type=int, help="random seed (recorded with the fit)")
     g.add_argument("--level", type=float, help="credible-interval level (default 0.9)")
     g.add_argument("--sampler", choices=["pymc", "nutpie", "numpyro"], help="NUTS implementation (default pymc)")
+    g.add_argument("--likelihood", choices=["conditional", "binomial"],
+                   help="conditional: cell baselines conditioned away (new, faster); binomial: every cell baseline "
+                        "sampled (default for now; docs/model.md)")
     g.add_argument("--init", choices=["auto", "advi+adapt_diag", "jitter+adapt_diag"],
                    help="how PyMC's NUTS starts (default auto: ADVI for large models)")
     g.add_argument("--target-accept", type=float, help="NUTS target acceptance (default 0.99)")
-    g.add_argument("--parameterization", choices=["noncentered", "centered"], help="of the campaign-level effects (default noncentered)")
+    g.add_argument("--parameterization", choices=["auto", "noncentered", "centered"], help="of the campaign-level effects (default noncentered)")
     g.add_argument("--bias-sign", choices=["any", "nonnegative"], help="constrain each campaign's bias to >= 0")
     g.add_argument("--outcome-bias", action="store_true", help="add a bias effect per outcome shared by campaigns")
     g.add_argument("--groups", help="CSV with campaign,group (e.g. product line): a further pooling level")
@@ -30,7 +33,8 @@ def model_args(p: argparse.ArgumentParser) -> None:
 def overrides_from_args(args) -> dict:
     """Model settings given on the command line (only those given)."""
     vals = {name: getattr(args, name) for name in ("chains", "draws", "tune", "seed", "level", "sampler",
-                                                  "target_accept", "init", "parameterization", "bias_sign")
+                                                  "target_accept", "init", "parameterization", "bias_sign",
+                                                  "likelihood")
             if getattr(args, name, None) is not None}
     if getattr(args, "outcome_bias", False):
         vals["outcome_bias"] = True
