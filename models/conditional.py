@@ -201,12 +201,6 @@ def _pair_sums(cells: CellTable, idx: np.ndarray, psi_pair: np.ndarray, n_pairs:
     return out
 
 
-def _pair_moments(cells: CellTable, idx: np.ndarray, psi: np.ndarray):
-    """Sum over the strata ``idx`` (one pair) of (f, g, h) at the common log odds ratios ``psi``."""
-    f, g, h = strata_moments(cells, idx, np.broadcast_to(np.asarray(psi, float), (idx.size, np.size(psi))))
-    return f.sum(axis=0), g.sum(axis=0), h.sum(axis=0)
-
-
 def conditional_mle(cells: CellTable, idx: np.ndarray, penalized: bool = False,
                     tol: float = 1e-10) -> tuple[float, float]:
     """Maximum of one pair's conditional log-likelihood and the curvature there.

@@ -31,7 +31,7 @@ from liftpool.models.errors import FitError, LiftpoolWarning
 from liftpool.models.gaussian import gaussian_posterior
 from liftpool.models.quick import quick_fit, quick_relative
 from liftpool.models.settings import ModelSettings, default_cores
-from liftpool.models.summary import NEW_CAMPAIGN, PORTFOLIO, summarize_draws
+from liftpool.models.summary import NEW_CAMPAIGN, PORTFOLIO, prior_lift_quantiles, summarize_draws
 
 __all__ = ["FitResult", "fit_counts", "load_fit", "package_versions", "choose_init", "free_parameters", "AUTO_ADVI_FROM"]
 
@@ -288,7 +288,6 @@ def _posterior_quantities(d: Design, post: xr.Dataset, corrected: bool) -> dict[
     return q
 
 
-
 def _run_sampler(model, s: ModelSettings, info: dict, say, progressbar: bool, init: str, **extra) -> az.InferenceData:
     """pm.sample with the settings; a Ctrl-C or a partial trace is never a fit."""
     import pymc as pm
@@ -358,13 +357,13 @@ def _sample_binomial(d: Design, s: ModelSettings, info: dict, say, progressbar: 
     return idata, diag, predictive, model
 
 
-def _initial_points(qcore: dict, shares, model, chains: int) -> list[dict]:
+def _initial_points(qcore: dict, shares, model, s: ModelSettings) -> list[dict]:
     """One start per chain: a quick-mode draw, moved into the sampler's (partially centred) variables."""
     w_b, w_x = shares
     names = {v.name for v in model.free_RVs}
     n = qcore["target_excess"].shape[0]
     out = []
-    for c in range(chains):
+    for c in range(s.chains):
         i = (c * 9973 + 17) % n
         pt_ = {}
         for k in ("bias_mean", "bias_sd", "residual_sd", "lift_mean", "lift_sd"):
@@ -372,12 +371,12 @@ def _initial_points(qcore: dict, shares, model, chains: int) -> list[dict]:
                 pt_[k] = max(float(qcore[k][i]), 1e-3) if k.endswith("_sd") else float(qcore[k][i])
         mu_l = pt_.get("lift_mean", 0.0)
         if "target_excess_raw" in names:
-            sd = np.sqrt(pt_.get("lift_sd", qcore["lift_mean_scale"]) ** 2 + pt_.get("residual_sd", 0.0) ** 2)
+            sd = np.sqrt(pt_.get("lift_sd", s.lift_mean_scale) ** 2 + pt_.get("residual_sd", 0.0) ** 2)
             x = qcore["target_excess"][i]
             pt_["target_excess_raw"] = w_x * mu_l + (x - mu_l) / sd ** (1.0 - w_x)
         if "bias_raw" in names:
             mu_b = pt_.get("bias_mean", 0.0)
-            sd = pt_.get("bias_sd", qcore.get("bias_sd_fixed", None) or 1.0)
+            sd = pt_.get("bias_sd", s.bias_mean_scale)  # a single campaign: the fixed prior scale
             b = qcore["bias"][i]
             pt_["bias_raw"] = w_b * mu_b + (b - mu_b) / sd ** (1.0 - w_b)
         out.append(pt_)
@@ -386,7 +385,7 @@ def _initial_points(qcore: dict, shares, model, chains: int) -> list[dict]:
 
 def _sample_conditional(d: Design, curves, qcore: dict, s: ModelSettings, info: dict, say, progressbar: bool,
                         t0: float):
-    """The default model: the conditional likelihood, placebo residuals integrated, partial centring."""
+    """The conditional-likelihood model (opt-in for now): placebo residuals integrated, partial centring."""
     from liftpool.models.backend import configure_backend
     from liftpool.models.conditional_model import (
         CORE_VARS,
@@ -398,8 +397,6 @@ def _sample_conditional(d: Design, curves, qcore: dict, s: ModelSettings, info: 
     spreads = {k: float(np.mean(qcore[k])) for k in ("bias_sd", "residual_sd", "lift_sd")}
     shares = information_shares(d, curves, spreads, s)
     model = build_conditional_model(d, curves, s, shares)
-    if d.n_campaigns == 1:
-        qcore = {**qcore, "bias_sd_fixed": s.bias_mean_scale}
     n_free = free_parameters(model)
     info["free_parameters"] = n_free
     info["centring"] = {"bias_mean_weight": float(np.mean(shares[0])),
@@ -410,7 +407,7 @@ def _sample_conditional(d: Design, curves, qcore: dict, s: ModelSettings, info: 
     if s.sampler == "pymc":
         if init == "auto":
             init = "adapt_diag"
-            extra["initvals"] = _initial_points(qcore, shares, model, s.chains)
+            extra["initvals"] = _initial_points(qcore, shares, model, s)
     idata = _run_sampler(model, s, info, say, progressbar, init, **extra)
     info["sampling_seconds"] = round(time.perf_counter() - t0, 2)
     post = idata.posterior
@@ -435,7 +432,7 @@ def _posterior_dataset(d: Design, core: dict, done: dict, chains: int, draws: in
     dims_of = {"bias": ("campaign",), "target_excess": ("campaign",), "group_effect": ("group",),
                "outcome_bias": ("outcome",)}
     for k, v in core.items():
-        if not isinstance(v, np.ndarray) or k.endswith("_fixed"):
+        if not isinstance(v, np.ndarray):
             continue
         data[k] = (("chain", "draw") + dims_of.get(k, ()), v.reshape((chains, draws) + v.shape[2:]))
     for k in _CAMPAIGN_VARS:
@@ -492,11 +489,7 @@ def prior_predictive_lift_numpy(d: Design, s: ModelSettings, n_draws: int = 1000
         sd = np.abs(rng.normal(0.0, s.lift_sd_scale, n_draws))
         lift = rng.normal(mu, sd)[:, None] * np.ones((1, d.n_campaigns))
     rel, _, _ = quick_relative(d, lift)
-    x = rel.ravel()
-    x = x[np.isfinite(x)]
-    q = np.quantile(x, [0.05, 0.25, 0.5, 0.75, 0.95])
-    return {"lift_prior_quantiles": {f"q{int(p * 100):02d}": float(v) for p, v in zip((0.05, 0.25, 0.5, 0.75, 0.95),
-                                                                                      q, strict=True)}}
+    return prior_lift_quantiles(rel)
 
 def fit_counts(
     counts: pd.DataFrame,

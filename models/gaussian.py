@@ -36,11 +36,15 @@ _PINNED = 1e12
 
 
 def _spread_grid(scale: float, n: int) -> tuple[np.ndarray, np.ndarray]:
-    """Points and cell widths over (0, 5 scale] for a half-normal(scale) spread, denser near zero."""
-    u = (np.arange(n) + 0.5) / n
-    pts = 5.0 * scale * u**2
+    """Points and cell edges over (0, 5 scale] for a half-normal(scale) spread, denser near zero."""
+    pts = 5.0 * scale * ((np.arange(n) + 0.5) / n) ** 2
     edges = 5.0 * scale * (np.arange(n + 1) / n) ** 2
-    return pts, np.diff(edges)
+    return pts, edges
+
+
+def _fixed(value: float) -> tuple[np.ndarray, np.ndarray]:
+    """A spread fixed at ``value``: one point in a cell of width 1 (its weight is then 1)."""
+    return np.array([value]), np.array([value - 0.5, value + 0.5])
 
 
 def _campaign_terms(y_pl, v_pl, camp_pl, C, yt, st2, has_t, sr2, sl2):
@@ -143,14 +147,15 @@ def gaussian_posterior(y: np.ndarray, se: np.ndarray, informative: np.ndarray, p
     n = SPREAD_GRID
     # the spreads' grids (a fixed spread is a single point of width 1)
     if single:
-        gb, wb = np.array([s.bias_mean_scale if corrected else 0.0]), np.ones(1)
-        gl, wl = np.array([s.lift_mean_scale]), np.ones(1)
+        gb, eb = _fixed(s.bias_mean_scale if corrected else 0.0)
+        gl, el = _fixed(s.lift_mean_scale)
         prior_prec = np.array([_PINNED, _PINNED])
     else:
-        gb, wb = _spread_grid(s.bias_sd_scale, n) if corrected else (np.zeros(1), np.ones(1))
-        gl, wl = _spread_grid(s.lift_sd_scale, n)
+        gb, eb = _spread_grid(s.bias_sd_scale, n) if corrected else _fixed(0.0)
+        gl, el = _spread_grid(s.lift_sd_scale, n)
         prior_prec = np.array([1.0 / s.bias_mean_scale**2 if corrected else _PINNED, 1.0 / s.lift_mean_scale**2])
-    gr, wr = _spread_grid(s.residual_sd_scale, n) if corrected else (np.zeros(1), np.ones(1))
+    gr, er = _spread_grid(s.residual_sd_scale, n) if corrected else _fixed(0.0)
+    wb, wr, wl = np.diff(eb), np.diff(er), np.diff(el)
 
     def log_prior(sb, sr, sl):
         lp = 0.0
@@ -174,15 +179,11 @@ def gaussian_posterior(y: np.ndarray, se: np.ndarray, informative: np.ndarray, p
     pick = rng.choice(w.size, size=n_draws, p=w)
     ib, ir, il = np.unravel_index(pick, logp.shape)
 
-    def jitter(grid, widths, i, scale, fixed):
-        if fixed:
-            return grid[i]
-        edges = 5.0 * scale * (np.arange(grid.size + 1) / grid.size) ** 2
-        return rng.uniform(edges[i], edges[i + 1])
+    def jitter(grid, edges, i):
+        # a fixed spread stays put; a grid spread is drawn uniformly within its cell
+        return grid[i] if grid.size == 1 else rng.uniform(edges[i], edges[i + 1])
 
-    sb = jitter(gb, wb, ib, s.bias_sd_scale, single or not corrected)
-    sr = jitter(gr, wr, ir, s.residual_sd_scale, not corrected)
-    sl = jitter(gl, wl, il, s.lift_sd_scale, single)
+    sb, sr, sl = jitter(gb, eb, ib), jitter(gr, er, ir), jitter(gl, el, il)
     # means | spreads, then each campaign's (b, x) | means, spreads
     out = {k: np.empty(n_draws) for k in ("bias_mean", "lift_mean")}
     bias = np.empty((n_draws, C))
@@ -195,8 +196,8 @@ def gaussian_posterior(y: np.ndarray, se: np.ndarray, informative: np.ndarray, p
         chol = np.linalg.cholesky(inv + 1e-300 * np.eye(2))
         mu = mean + np.einsum("dij,dj->di", chol, rng.standard_normal(mean.shape))
         mb, ml = mu[:, 0], mu[:, 1]
-        if single or not corrected:
-            mb = mb * 0.0 if not corrected else mb
+        if not corrected:
+            mb = np.zeros_like(mb)
         A_pl, Sy_pl, _, _, pi, _ = t
         sb2 = (sb[sl_] ** 2)[:, None]
         # b_c | mu: observations of b are the placebos and (y_t - lift_mean) with variance w

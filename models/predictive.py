@@ -7,6 +7,7 @@ import pandas as pd
 import pymc as pm
 
 from liftpool.models.design import Design
+from liftpool.models.summary import prior_lift_quantiles
 
 __all__ = ["posterior_predictive_check", "prior_predictive_lift"]
 
@@ -50,8 +51,4 @@ def prior_predictive_lift(model: pm.Model, seed: int, n_draws: int = 1000) -> di
     """What the priors alone imply for the relative lift (a check that they are weakly informative)."""
     with model:
         prior = pm.sample_prior_predictive(draws=n_draws, var_names=["lift"], random_seed=seed)
-    x = prior.prior["lift"].values.ravel()
-    x = x[np.isfinite(x)]
-    q = np.quantile(x, [0.05, 0.25, 0.5, 0.75, 0.95])
-    return {"lift_prior_quantiles": {f"q{int(p * 100):02d}": float(v) for p, v in zip((0.05, 0.25, 0.5, 0.75, 0.95),
-                                                                                      q, strict=True)}}
+    return prior_lift_quantiles(prior.prior["lift"].values)

@@ -11,7 +11,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-__all__ = ["summarize_draws", "SUMMARY_COLUMNS", "PORTFOLIO", "NEW_CAMPAIGN", "QUANTITIES"]
+__all__ = ["summarize_draws", "prior_lift_quantiles", "SUMMARY_COLUMNS", "PORTFOLIO", "NEW_CAMPAIGN", "QUANTITIES"]
 
 SUMMARY_COLUMNS = ["campaign", "quantity", "mean", "median", "lower", "upper", "level"]
 PORTFOLIO = "(portfolio)"
@@ -56,3 +56,14 @@ def summarize_draws(per_campaign: dict[str, dict[str, np.ndarray]], pooled: dict
         for q, d in qs.items():
             rows.append(_row(name, q, d, level))
     return pd.DataFrame(rows, columns=SUMMARY_COLUMNS)
+
+
+#: Quantiles of the prior predictive relative lift stored with every full fit.
+PRIOR_QUANTILES = (0.05, 0.25, 0.5, 0.75, 0.95)
+
+
+def prior_lift_quantiles(x: np.ndarray) -> dict:
+    """``{"lift_prior_quantiles": {"q05": ..., ...}}`` of prior relative-lift draws (non-finite dropped)."""
+    x = np.asarray(x, dtype=float).ravel()
+    q = np.quantile(x[np.isfinite(x)], PRIOR_QUANTILES)
+    return {"lift_prior_quantiles": {f"q{int(p * 100):02d}": float(v) for p, v in zip(PRIOR_QUANTILES, q, strict=True)}}
