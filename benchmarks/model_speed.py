@@ -174,13 +174,13 @@ def bench_start(campaigns: int = 40, tune: int = 200, draws: int = 100) -> None:
     model = build_model(make_design(counts), s)
     n_free = free_parameters(model)
     print(f"start: {campaigns} campaigns x 24 cells x 6 outcomes ({n_free:,} free parameters), one chain, "
-          f"{tune} tuning + {draws} draws, target_accept {s.target_accept}", flush=True)
+          f"{tune} tuning + {draws} draws, target_accept {s.accept}", flush=True)
     res = {}
     for init in ("jitter+adapt_diag", "advi+adapt_diag"):
         t = time.perf_counter()
         with model:
             idata = pm.sample(draws=draws, tune=tune, chains=1, cores=1, init=init, n_init=s.advi_iterations,
-                              random_seed=5, nuts_sampler="pymc", target_accept=s.target_accept,
+                              random_seed=5, nuts_sampler="pymc", target_accept=s.accept,
                               progressbar=False, compute_convergence_checks=False, discard_tuned_samples=False)
         secs = time.perf_counter() - t
         warm = idata.warmup_sample_stats["n_steps"].values.ravel()

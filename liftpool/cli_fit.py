@@ -12,18 +12,18 @@ def model_args(p: argparse.ArgumentParser) -> None:
     g = p.add_argument_group("model and sampler (defaults in docs/model.md)")
     g.add_argument("--quick", action="store_true", help="quick mode: stratified estimates pooled exactly, seconds")
     g.add_argument("--chains", type=int, help="NUTS chains (default 4)")
-    g.add_argument("--draws", type=int, help="kept draws per chain (default 2000)")
+    g.add_argument("--draws", type=int, help="kept draws per chain (default 1000)")
     g.add_argument("--tune", type=int, help="tuning steps per chain (default 1000)")
     g.add_argument("--seed", type=int, help="random seed (recorded with the fit)")
     g.add_argument("--level", type=float, help="credible-interval level (default 0.9)")
     g.add_argument("--sampler", choices=["pymc", "nutpie", "numpyro"], help="NUTS implementation (default pymc)")
     g.add_argument("--likelihood", choices=["conditional", "binomial"],
-                   help="conditional: cell baselines conditioned away (new, faster); binomial: every cell baseline "
-                        "sampled (default for now; docs/model.md)")
+                   help="conditional (default): cell baselines conditioned away, campaign effects integrated; "
+                        "binomial: the earlier reference model, every cell baseline sampled (docs/model.md)")
     g.add_argument("--init", choices=["auto", "advi+adapt_diag", "jitter+adapt_diag"],
                    help="how PyMC's NUTS starts (default auto: ADVI for large models)")
-    g.add_argument("--target-accept", type=float, help="NUTS target acceptance (default 0.99)")
-    g.add_argument("--parameterization", choices=["auto", "noncentered", "centered"], help="of the campaign-level effects (default noncentered)")
+    g.add_argument("--target-accept", type=float, help="NUTS target acceptance (default 0.95; 0.99 for --likelihood binomial)")
+    g.add_argument("--parameterization", choices=["auto", "noncentered", "centered"], help="of sampled campaign-level effects (binomial model, or --bias-sign nonnegative; default noncentered)")
     g.add_argument("--bias-sign", choices=["any", "nonnegative"], help="constrain each campaign's bias to >= 0")
     g.add_argument("--outcome-bias", action="store_true", help="add a bias effect per outcome shared by campaigns")
     g.add_argument("--groups", help="CSV with campaign,group (e.g. product line): a further pooling level")

@@ -114,7 +114,7 @@ def divergence_advice(settings) -> str:
     if settings is None:
         return "raise target_accept (--target-accept 0.95), or tighten the spread priors"
     steps = []
-    ta = float(settings.target_accept)
+    ta = settings.accept
     if ta < 0.95:
         steps.append(f"raise target_accept from {ta:g} to 0.95 (--target-accept 0.95)")
     elif ta < 0.99:

@@ -296,7 +296,7 @@ def _run_sampler(model, s: ModelSettings, info: dict, say, progressbar: bool, in
         with model:
             return pm.sample(draws=s.draws, tune=s.tune, chains=s.chains,
                              cores=min(s.chains, default_cores()), random_seed=s.seed,
-                             target_accept=s.target_accept, nuts_sampler=s.sampler, init=init,
+                             target_accept=s.accept, nuts_sampler=s.sampler, init=init,
                              n_init=s.advi_iterations, progressbar=progressbar,
                              compute_convergence_checks=False, **extra)
 
@@ -383,10 +383,32 @@ def _initial_points(qcore: dict, shares, model, s: ModelSettings) -> list[dict]:
     return out
 
 
+def uses_collapsed(d: Design, s: ModelSettings) -> bool:
+    """Whether the conditional model integrates the campaign effects out of the sampler.
+
+    It does unless a campaign's bias is truncated (``bias_sign="nonnegative"``) or there is nothing
+    population-level to sample (one campaign and no placebo).
+    """
+    return s.bias_sign == "any" and not (d.n_campaigns == 1 and d.flags.no_placebo_anywhere)
+
+
+def _population_starts(qcore: dict, model, s: ModelSettings) -> list[dict]:
+    """One start per chain for the collapsed model: a quick-mode draw of the population parameters."""
+    names = {v.name for v in model.free_RVs}
+    n = qcore["target_excess"].shape[0]
+    out = []
+    for c in range(s.chains):
+        i = (c * 9973 + 17) % n
+        out.append({k: (max(float(qcore[k][i]), 1e-3) if k.endswith("_sd") else float(qcore[k][i]))
+                    for k in ("bias_mean", "bias_sd", "residual_sd", "lift_mean", "lift_sd") if k in names})
+    return out
+
+
 def _sample_conditional(d: Design, curves, qcore: dict, s: ModelSettings, info: dict, say, progressbar: bool,
-                        t0: float):
-    """The conditional-likelihood model (opt-in for now): placebo residuals integrated, partial centring."""
+                        t0: float, rng: np.random.Generator):
+    """The conditional-likelihood model: campaign effects integrated (or, when they cannot be, sampled)."""
     from liftpool.models.backend import configure_backend
+    from liftpool.models.collapsed import POPULATION_VARS, build_collapsed_model, campaign_draws
     from liftpool.models.conditional_model import (
         CORE_VARS,
         build_conditional_model,
@@ -394,24 +416,39 @@ def _sample_conditional(d: Design, curves, qcore: dict, s: ModelSettings, info: 
     )
 
     info["backend"] = configure_backend()
-    spreads = {k: float(np.mean(qcore[k])) for k in ("bias_sd", "residual_sd", "lift_sd")}
-    shares = information_shares(d, curves, spreads, s)
-    model = build_conditional_model(d, curves, s, shares)
+    collapsed = uses_collapsed(d, s)
+    if collapsed:
+        model = build_collapsed_model(d, curves, s)
+        starts = _population_starts(qcore, model, s)
+    else:
+        spreads = {k: float(np.mean(qcore[k])) for k in ("bias_sd", "residual_sd", "lift_sd")}
+        shares = information_shares(d, curves, spreads, s)
+        model = build_conditional_model(d, curves, s, shares)
+        starts = _initial_points(qcore, shares, model, s)
+        info["centring"] = {"bias_mean_weight": float(np.mean(shares[0])),
+                            "target_excess_mean_weight": float(np.mean(shares[1]))}
+    info["sampled_effects"] = "integrated" if collapsed else "sampled"
     n_free = free_parameters(model)
     info["free_parameters"] = n_free
-    info["centring"] = {"bias_mean_weight": float(np.mean(shares[0])),
-                        "target_excess_mean_weight": float(np.mean(shares[1]))}
     say(f"sampling: {s.chains} chains x ({s.tune} tuning + {s.draws} draws), {n_free:,} parameters, seed {s.seed}")
     extra = {}
     init = s.init
-    if s.sampler == "pymc":
-        if init == "auto":
-            init = "adapt_diag"
-            extra["initvals"] = _initial_points(qcore, shares, model, s)
+    if s.sampler == "pymc" and init == "auto":
+        init = "adapt_diag"
+        extra["initvals"] = starts
     idata = _run_sampler(model, s, info, say, progressbar, init, **extra)
     info["sampling_seconds"] = round(time.perf_counter() - t0, 2)
     post = idata.posterior
-    core = {k: post[k].values for k in CORE_VARS if k in post}
+    if collapsed:
+        say("drawing each campaign's bias and excess from their conditionals")
+        t1 = time.perf_counter()
+        ch, dr = post.sizes["chain"], post.sizes["draw"]
+        flat = {k: post[k].values.reshape((ch * dr,) + post[k].shape[2:]) for k in POPULATION_VARS if k in post}
+        full = campaign_draws(d, curves, s, flat, rng)
+        core = {k: v.reshape((ch, dr) + v.shape[1:]) for k, v in full.items()}
+        info["completion_seconds"] = round(time.perf_counter() - t1, 2)
+    else:
+        core = {k: post[k].values for k in CORE_VARS if k in post}
     core.update(corrected=not d.flags.no_placebo_anywhere, single=d.n_campaigns == 1,
                 lift_mean_scale=s.lift_mean_scale)
     return idata, None, model, core
@@ -575,7 +612,7 @@ def fit_counts(
                                                          ("bias_sign", s.bias_sign != "any")) if on]
             idata = None
         else:
-            idata, diag, model, core = _sample_conditional(d, curves, qcore, s, info, say, progressbar, t0)
+            idata, diag, model, core = _sample_conditional(d, curves, qcore, s, info, say, progressbar, t0, rng)
     if core is not None:
         chains, draws = core["target_excess"].shape[:2]
         flat = {k: (v.reshape((chains * draws,) + v.shape[2:]) if isinstance(v, np.ndarray) else v)

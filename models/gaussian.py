@@ -113,7 +113,8 @@ def _marginal(terms, yt, sb2, prior_prec):
 
 def gaussian_posterior(y: np.ndarray, se: np.ndarray, informative: np.ndarray, pair_campaign: np.ndarray,
                        target_pair: np.ndarray, s: ModelSettings, n_draws: int,
-                       rng: np.random.Generator) -> dict[str, np.ndarray]:
+                       rng: np.random.Generator, fixed_spreads: dict[str, float] | None = None
+                       ) -> dict[str, np.ndarray]:
     """Joint draws of the model's spreads, means, campaign biases and target excesses.
 
     Parameters
@@ -127,6 +128,9 @@ def gaussian_posterior(y: np.ndarray, se: np.ndarray, informative: np.ndarray, p
     s : ModelSettings
     n_draws : int
     rng : numpy Generator
+    fixed_spreads : dict, optional
+        ``bias_sd``, ``residual_sd`` or ``lift_sd`` held at given values instead of integrated
+        (an oracle for known-truth checks: the same model with the true spreads).
 
     Returns
     -------
@@ -155,6 +159,13 @@ def gaussian_posterior(y: np.ndarray, se: np.ndarray, informative: np.ndarray, p
         gl, el = _spread_grid(s.lift_sd_scale, n)
         prior_prec = np.array([1.0 / s.bias_mean_scale**2 if corrected else _PINNED, 1.0 / s.lift_mean_scale**2])
     gr, er = _spread_grid(s.residual_sd_scale, n) if corrected else _fixed(0.0)
+    fixed_spreads = fixed_spreads or {}
+    if "bias_sd" in fixed_spreads and corrected and not single:
+        gb, eb = _fixed(fixed_spreads["bias_sd"])
+    if "residual_sd" in fixed_spreads and corrected:
+        gr, er = _fixed(fixed_spreads["residual_sd"])
+    if "lift_sd" in fixed_spreads and not single:
+        gl, el = _fixed(fixed_spreads["lift_sd"])
     wb, wr, wl = np.diff(eb), np.diff(er), np.diff(el)
 
     def log_prior(sb, sr, sl):

@@ -9,13 +9,15 @@ from typing import Any
 from liftpool.data_prep.errors import ConfigError
 from liftpool.data_prep.options import OptionsMixin
 
-__all__ = ["ModelSettings", "SAMPLERS", "INITS", "PARAMETERIZATIONS", "BIAS_SIGNS", "LIKELIHOODS", "default_cores"]
+__all__ = ["ModelSettings", "SAMPLERS", "INITS", "PARAMETERIZATIONS", "BIAS_SIGNS", "LIKELIHOODS", "DEFAULT_ACCEPT", "default_cores"]
 
 SAMPLERS = ("pymc", "nutpie", "numpyro")
 INITS = ("auto", "advi+adapt_diag", "jitter+adapt_diag")
 PARAMETERIZATIONS = ("auto", "noncentered", "centered")
 LIKELIHOODS = ("conditional", "binomial")
 BIAS_SIGNS = ("any", "nonnegative")
+#: NUTS target acceptance rate by likelihood when none is given (docs/performance.md).
+DEFAULT_ACCEPT = {"conditional": 0.95, "binomial": 0.99}
 
 
 def default_cores() -> int:
@@ -32,15 +34,17 @@ class ModelSettings(OptionsMixin):
         NUTS chains (4 by default, run over the available cores), kept draws and tuning steps per chain.
     seed : int
         Random seed; recorded with the fit, results are reproducible.
-    target_accept : float
-        NUTS target acceptance rate.
+    target_accept : float, optional
+        NUTS target acceptance rate; by default (None) 0.95 for the conditional model (its sampler
+        moves in the population-level parameters only, a space without funnels) and 0.99 for the
+        Binomial model.  :attr:`accept` is the value used.
     sampler : {"pymc", "nutpie", "numpyro"}
         NUTS implementation (passed to PyMC as ``nuts_sampler``).
     likelihood : {"conditional", "binomial"}
-        ``conditional`` conditions on each cell's total conversions, so the cell baselines drop
-        out and the sampler moves only in the biases, lifts and spreads (work in progress: not
-        yet the default, see docs/model.md); ``binomial`` (the default for now) samples every
-        cell's baseline.
+        ``conditional`` (the default) conditions on each cell's total conversions, so the cell
+        baselines drop out; every campaign's bias and lift are integrated out of the sampler, which
+        moves only in the population-level parameters (docs/model.md).  ``binomial`` is the
+        earlier reference model: it samples every cell's baseline and every campaign effect.
     init : {"auto", "advi+adapt_diag", "jitter+adapt_diag"}
         How PyMC's NUTS starts its chains.  ``auto``: the conditional model starts each chain
         from its own quick-mode draw; the Binomial model uses ADVI from 1,000 free parameters on.
@@ -72,12 +76,12 @@ class ModelSettings(OptionsMixin):
     """
 
     chains: int = 4
-    draws: int = 2000
+    draws: int = 1000
     tune: int = 1000
     seed: int = 20261201
-    target_accept: float = 0.99
+    target_accept: float | None = None
     sampler: str = "pymc"
-    likelihood: str = "binomial"
+    likelihood: str = "conditional"
     init: str = "auto"
     advi_iterations: int = 20000
     parameterization: str = "noncentered"
@@ -93,6 +97,13 @@ class ModelSettings(OptionsMixin):
     baseline_sd_scale: float = 1.0
     level: float = 0.9
     extra: dict[str, Any] = field(default_factory=dict, repr=False, compare=False)
+
+    @property
+    def accept(self) -> float:
+        """The NUTS target acceptance rate used: :attr:`target_accept`, or the likelihood's default."""
+        if self.target_accept is not None:
+            return float(self.target_accept)
+        return DEFAULT_ACCEPT[self.likelihood]
 
     def __post_init__(self) -> None:
         if self.extra:
@@ -115,7 +126,7 @@ class ModelSettings(OptionsMixin):
         if not 0 < self.level < 1:
             raise ConfigError(problem=f"'level' must be between 0 and 1, got {self.level!r}",
                               fix="set level to e.g. 0.9 for 90% intervals")
-        if not 0.5 <= self.target_accept < 1:
+        if self.target_accept is not None and not 0.5 <= self.target_accept < 1:
             raise ConfigError(problem="'target_accept' must be in [0.5, 1)", fix="set target_accept to e.g. 0.9")
         for f in fields(self):
             if f.name.endswith("_scale") and not getattr(self, f.name) > 0:

@@ -171,7 +171,8 @@ def build_tables(fit: FitResult, spend: pd.DataFrame | None = None, prep_campaig
                          for c in fit.diagnostics.checks]) if fit.diagnostics.checks else pd.DataFrame(
         [{"check": "sampler", "value": np.nan, "threshold": np.nan, "passed": True,
           "worst parameter": "", "what to do": fit.diagnostics.note}])
-    settings = pd.DataFrame(sorted(fit.settings.to_dict().items()), columns=["setting", "value"])
+    used = {**fit.settings.to_dict(), "target_accept": fit.settings.accept}
+    settings = pd.DataFrame(sorted(used.items()), columns=["setting", "value"])
     settings["value"] = settings["value"].astype(str)
     prov = [("fit mode", fit.mode), ("seed", str(fit.settings.seed)),
             ("counts table SHA-256", fit.info.get("counts_sha256", "n/a")),
