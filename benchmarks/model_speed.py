@@ -1,16 +1,19 @@
 """Model benchmarks (results in docs/performance.md).
 
-1. counts: the Binomial counts model against the same model on per-user Bernoulli rows
+1. counts: the Binomial (reference) counts model against the same model on per-user Bernoulli rows
    (1 million users): same posterior (the log densities differ by a constant and the
    gradients agree), and the ratio of time per gradient evaluation and per draw.
 2. samplers: ESS per second of lift_mean and bias_sd for each NUTS implementation
    installed (pymc, nutpie), compile versus sampling time.
-3. start: one chain from an ADVI start against one from PyMC's jitter start (the baseline), on
+3. start (Binomial model): one chain from an ADVI start against one from PyMC's jitter start (the baseline), on
    40 campaigns x 24 cells x 6 outcomes: time and leapfrog steps in tuning and draws.
-4. scale: 200 campaigns x 24 cells x 6 outcomes with the defaults: time, peak memory, divergences.
+4. scale: 200 campaigns x 24 cells x 6 outcomes with the defaults: time, peak memory, checks.
+5. gradient: one log-density gradient of the conditional model against the Binomial one, same data.
+6. demo: the demo's full fit at the defaults.
+7. quick: the quick mode on 2,000 campaigns x 24 cells x 6 outcomes.
 
-Usage: python benchmarks/model_speed.py [counts] [samplers] [start] [scale] [--draws=N --tune=N (start, scale)
-       --campaigns=N (start)]
+Usage: python benchmarks/model_speed.py [counts] [samplers] [start] [scale] [gradient] [demo] [quick]
+       [--draws=N --tune=N (start, scale) --campaigns=N (start, scale, gradient, quick)]
 """
 
 from __future__ import annotations
@@ -30,32 +33,18 @@ import arviz as az
 import numpy as np
 import pandas as pd
 
+from liftpool.data_prep.shapes import Shape, shape_counts
 from liftpool.models import ModelSettings, fit_counts, make_design
 from liftpool.models.backend import configure_backend
 from liftpool.models.hierarchical import build_model
 
-COLS = ["campaign", "cell", "arm", "outcome", "role", "users", "conversions"]
-
 
 def synthetic_counts(n_campaigns, n_cells, n_outcomes, users_per_cell, seed=0) -> pd.DataFrame:
-    """Counts drawn from the model's own generative story (invented data, for measurement only)."""
-    rng = np.random.default_rng(seed)
-    bias = rng.normal(0.3, 0.1, n_campaigns)
-    lift = rng.normal(0.2, 0.1, n_campaigns)
-    rows = []
-    for c in range(n_campaigns):
-        for o in range(n_outcomes):
-            role = "target" if o == 0 else "placebo"
-            eff = bias[c] + rng.normal(0, 0.05) + (lift[c] if o == 0 else 0.0)
-            base = rng.normal(-3.5, 0.3)
-            for k in range(n_cells):
-                b = base + rng.normal(0, 0.3)
-                n_s, n_u = rng.poisson(users_per_cell * 0.7) + 1, rng.poisson(users_per_cell * 0.3) + 1
-                x_s = rng.binomial(n_s, 1 / (1 + np.exp(-(b + eff))))
-                x_u = rng.binomial(n_u, 1 / (1 + np.exp(-b)))
-                rows += [(f"c{c:03d}", f"k{k:02d}", "seen", f"o{c:03d}_{o}", role, n_s, x_s),
-                         (f"c{c:03d}", f"k{k:02d}", "unseen", f"o{c:03d}_{o}", role, n_u, x_u)]
-    return pd.DataFrame(rows, columns=COLS)
+    """Counts of n_campaigns x n_cells x n_outcomes (one target, the rest placebos) from the shape
+    suite's generative story (data_prep/shapes.py; invented data, for measurement only)."""
+    sh = Shape("bench", campaigns=n_campaigns, cells=(n_cells, n_cells), placebos=n_outcomes - 1,
+               users=(users_per_cell * n_cells, users_per_cell * n_cells), rate=(0.02, 0.04))
+    return shape_counts(sh, seed)[0]
 
 
 def expand_to_users(counts: pd.DataFrame) -> pd.DataFrame:
@@ -81,7 +70,7 @@ def bench_counts() -> None:
     per_user.conversions = np.concatenate([(np.arange(n) < x).astype(np.int64)
                                            for n, x in zip(reps, d_counts.conversions, strict=True)])
     per_user.users = np.ones_like(per_user.conversions)
-    s = ModelSettings(seed=1)
+    s = ModelSettings(seed=1, likelihood="binomial")
     m_c, m_u = build_model(d_counts, s), build_model(per_user, s)
     f_c = m_c.compile_logp(jacobian=True)
     f_u = m_u.compile_logp(jacobian=True)
@@ -170,7 +159,7 @@ def bench_start(campaigns: int = 40, tune: int = 200, draws: int = 100) -> None:
     counts = synthetic_counts(campaigns, 24, 6, users_per_cell=400, seed=2)
     from liftpool.models.fit import free_parameters
 
-    s = ModelSettings()
+    s = ModelSettings(likelihood="binomial")
     model = build_model(make_design(counts), s)
     n_free = free_parameters(model)
     print(f"start: {campaigns} campaigns x 24 cells x 6 outcomes ({n_free:,} free parameters), one chain, "
@@ -192,31 +181,91 @@ def bench_start(campaigns: int = 40, tune: int = 200, draws: int = 100) -> None:
     print(f"  time, ADVI start / jitter start: {res['advi+adapt_diag'] / res['jitter+adapt_diag']:.2f}x", flush=True)
 
 
-def bench_scale(draws: int = 1000, tune: int = 1000) -> None:
-    """200 campaigns x 24 cells x 6 outcomes with the default settings (``auto`` start): time, memory, checks."""
-    counts = synthetic_counts(200, 24, 6, users_per_cell=400, seed=2)
-    print(f"scale: {len(counts):,} count rows (200 campaigns x 24 cells x 6 outcomes x 2 arms)", flush=True)
+def bench_scale(draws: int = 1000, tune: int = 1000, campaigns: int = 200) -> None:
+    """campaigns x 24 cells x 6 outcomes with the default settings: time, memory, checks."""
+    counts = synthetic_counts(campaigns, 24, 6, users_per_cell=400, seed=2)
+    print(f"scale: {len(counts):,} count rows ({campaigns} campaigns x 24 cells x 6 outcomes x 2 arms)", flush=True)
     t = time.perf_counter()
     f = fit_counts(counts, ModelSettings(draws=draws, tune=tune), progress=lambda m: print(m, flush=True))
     secs = time.perf_counter() - t
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     peak_child = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
     ss = f.idata.sample_stats
-    print(f"scale fit: {tune} tuning + {draws} draws x {f.settings.chains} chains, start {f.info.get('init')}: "
-          f"{secs / 60:.1f} min in all (sampling incl. start {f.info['sampling_seconds'] / 60:.1f} min); "
-          f"{float(ss['n_steps'].mean()):.0f} leapfrog steps per draw, step size {float(ss['step_size'].mean()):.4f}; "
-          f"peak memory {peak:,.0f} MB main process, {peak_child:,.0f} MB largest chain process", flush=True)
+    post = f.idata.posterior
+    n = post.sizes["chain"] * post.sizes["draw"]
+    ess = az.ess(post[[v for v in ("residual_sd", "bias_sd", "lift_sd") if v in post]], method="bulk")
+    print(f"scale fit ({f.info['likelihood']}, {f.info['free_parameters']} sampled parameters): {tune} tuning + "
+          f"{draws} draws x {f.settings.chains} chains: {secs / 60:.1f} min in all (curves {f.info.get('curve_seconds')} s, "
+          f"sampling {f.info['sampling_seconds']:.0f} s, completion {f.info.get('completion_seconds')} s); "
+          f"{float(ss['n_steps'].mean()):.1f} leapfrog steps per draw; bulk ESS per draw "
+          + ", ".join(f"{v} {float(ess[v]) / n:.2f}" for v in ess.data_vars)
+          + f"; peak memory {peak:,.0f} MB main process, {peak_child:,.0f} MB largest chain process", flush=True)
     print(f.diagnostics.render())
 
+
+def bench_gradient(campaigns: int = 40) -> None:
+    """Cost of one log-density gradient: the conditional (collapsed) model against the Binomial one, same data."""
+    from liftpool.models.collapsed import build_collapsed_model
+    from liftpool.models.conditional import build_curves, cell_tables
+
+    configure_backend()
+    counts = synthetic_counts(campaigns, 24, 6, users_per_cell=400, seed=2)
+    d = make_design(counts)
+    t = time.perf_counter()
+    curves = build_curves(cell_tables(d), len(d.pair_campaign))
+    t_curves = time.perf_counter() - t
+    out = {}
+    for name, model in (("binomial", build_model(d, ModelSettings(likelihood="binomial"))),
+                        ("conditional", build_collapsed_model(d, curves, ModelSettings()))):
+        fn = model.logp_dlogp_function(ravel_inputs=True)
+        fn.set_extra_values({})
+        x = np.concatenate([np.ravel(v) for v in model.initial_point().values()])
+        fn(x)
+        n = 0
+        t = time.perf_counter()
+        while time.perf_counter() - t < 3.0:
+            fn(x)
+            n += 1
+        out[name] = ((time.perf_counter() - t) / n, x.size)
+    (tb, nb), (tc, nc) = out["binomial"], out["conditional"]
+    print(f"gradient, {campaigns} campaigns x 24 cells x 6 outcomes: binomial {tb * 1e3:.2f} ms ({nb:,} parameters), "
+          f"conditional {tc * 1e3:.2f} ms ({nc} parameters): ratio {tc / tb:.2f}; the curves took {t_curves:.1f} s once",
+          flush=True)
+
+
+def bench_demo() -> None:
+    """The demo's full fit at the defaults: sampling time and checks."""
+    from liftpool.data_prep import CountingRules, prepare_counts, simulate
+
+    data = simulate(seed=21, scale=0.6)
+    counts = prepare_counts(data["impressions"], data["conversions"], data["outcomes"], users=data["users"],
+                            rules=CountingRules(unexposed=True)).counts
+    t = time.perf_counter()
+    f = fit_counts(counts, ModelSettings())
+    print(f"demo full fit: {time.perf_counter() - t:.1f} s in all, sampling {f.info['sampling_seconds']:.1f} s, "
+          f"{f.info['free_parameters']} sampled parameters, converged {f.converged}", flush=True)
+    print(f.diagnostics.render())
+
+
+def bench_quick(campaigns: int = 2000) -> None:
+    """The quick mode on campaigns x 24 cells x 6 outcomes."""
+    counts = synthetic_counts(campaigns, 24, 6, users_per_cell=400, seed=3)
+    t = time.perf_counter()
+    f = fit_counts(counts, ModelSettings(), quick=True)
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    print(f"quick mode, {campaigns} campaigns x 24 cells x 6 outcomes ({len(counts):,} rows): "
+          f"{time.perf_counter() - t:.1f} s (curves {f.info.get('curve_seconds')} s), peak memory {peak:,.0f} MB",
+          flush=True)
+
+
+BENCHES = {"counts": bench_counts, "samplers": bench_samplers, "start": bench_start, "scale": bench_scale,
+           "gradient": bench_gradient, "demo": bench_demo, "quick": bench_quick}
 
 if __name__ == "__main__":
     args = sys.argv[1:]
     opts = {a.split("=")[0].lstrip("-"): int(a.split("=")[1]) for a in args if a.startswith("--")}
-    which = [a for a in args if not a.startswith("--")] or ["counts", "samplers", "start", "scale"]
+    which = [a for a in args if not a.startswith("--")] or list(BENCHES)
     for w in which:
-        if w in ("scale", "start"):
-            fn = bench_scale if w == "scale" else bench_start
-            fn(**{k: v for k, v in opts.items() if k in fn.__code__.co_varnames})
-        else:
-            {"counts": bench_counts, "samplers": bench_samplers}[w]()
+        fn = BENCHES[w]
+        fn(**{k: v for k, v in opts.items() if k in fn.__code__.co_varnames})
         sys.stdout.flush()

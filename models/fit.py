@@ -227,8 +227,12 @@ def counts_hash(counts: pd.DataFrame) -> str:
     return hashlib.sha256(text.encode()).hexdigest()
 
 
-def _add_data(idata: az.InferenceData, d: Design) -> None:
-    """Data the reports need, stored with the posterior: per campaign and per (campaign, outcome) pair."""
+def _add_data(idata: az.InferenceData, d: Design, curves=None) -> None:
+    """Data the reports need, stored with the posterior: per campaign and per (campaign, outcome) pair.
+
+    Each pair's estimate and standard error: its conditional curve's (Firth-penalized) peak and
+    curvature when the fit used the curves, else the stratified Mantel-Haenszel estimate.
+    """
     from liftpool.models.quick import stratified_estimates
 
     c = d.counts
@@ -237,11 +241,16 @@ def _add_data(idata: az.InferenceData, d: Design) -> None:
     tgt = cells[cells["role"] == "target"]
     users = tgt.pivot_table(index="campaign", columns="arm", values="users", aggfunc="sum").reindex(d.campaigns)
     conv = tgt.pivot_table(index="campaign", columns="arm", values="conversions", aggfunc="sum").reindex(d.campaigns)
-    est = stratified_estimates(c).set_index(["campaign", "outcome"])
     labels = d.pair_labels()
     pc = np.array(d.campaigns)[d.pair_campaign]
     po = np.array(d.outcomes)[d.pair_outcome]
-    e = est.loc[list(zip(pc, po, strict=True))]
+    if curves is not None:
+        with np.errstate(divide="ignore"):
+            se = np.where(curves.informative, 1.0 / np.sqrt(np.maximum(curves.information, 1e-300)), np.inf)
+        e = pd.DataFrame({"log_or": np.where(curves.informative, curves.mode, np.nan), "se": se})
+    else:
+        est = stratified_estimates(c).set_index(["campaign", "outcome"])
+        e = est.loc[list(zip(pc, po, strict=True))]
     ds = xr.Dataset(
         {"users_seen": ("campaign", users["seen"].fillna(0).to_numpy(np.int64)),
          "users_unseen": ("campaign", users["unseen"].fillna(0).to_numpy(np.int64)),
@@ -566,6 +575,7 @@ def fit_counts(
             "pairs": int(len(d.pair_campaign)), "likelihood": s.likelihood}
     t0 = time.perf_counter()
     predictive = None
+    curves = None
     if quick and s.likelihood == "binomial":
         say("quick mode: stratified estimates and exact pooling")
         r = quick_fit(d, s)
@@ -641,7 +651,7 @@ def fit_counts(
         new_lift = np.expm1(ln).ravel()
     else:  # a single campaign: no population to predict from
         new_lift = None
-    _add_data(idata, d)
+    _add_data(idata, d, curves)
     info["counts_sha256"] = counts_hash(d.counts)
     post = idata.posterior
     per = _posterior_quantities(d, post, corrected)
