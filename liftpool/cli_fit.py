@@ -12,7 +12,7 @@ def model_args(p: argparse.ArgumentParser) -> None:
     g = p.add_argument_group("model and sampler (defaults in docs/model.md)")
     g.add_argument("--quick", action="store_true", help="quick mode: stratified estimates pooled exactly, seconds")
     g.add_argument("--chains", type=int, help="NUTS chains (default 4)")
-    g.add_argument("--draws", type=int, help="kept draws per chain (default 1000)")
+    g.add_argument("--draws", type=int, help="kept draws per chain (default 2000)")
     g.add_argument("--tune", type=int, help="tuning steps per chain (default 1000)")
     g.add_argument("--seed", type=int, help="random seed (recorded with the fit)")
     g.add_argument("--level", type=float, help="credible-interval level (default 0.9)")

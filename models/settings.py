@@ -76,7 +76,7 @@ class ModelSettings(OptionsMixin):
     """
 
     chains: int = 4
-    draws: int = 1000
+    draws: int = 2000
     tune: int = 1000
     seed: int = 20261201
     target_accept: float | None = None
