@@ -42,7 +42,7 @@ from pytensor.graph.op import Op
 from liftpool.models.conditional import CurveSet
 from liftpool.models.settings import ModelSettings
 
-__all__ = ["build_collapsed_model", "CampaignLoglik", "CampaignTerms", "campaign_terms", "campaign_draws", "OUTER_NODES",
+__all__ = ["build_collapsed_model", "population_lift", "CampaignLoglik", "CampaignTerms", "campaign_terms", "campaign_draws", "OUTER_NODES",
            "INNER_NODES", "POPULATION_VARS"]
 
 #: Gauss-Hermite nodes of each campaign's bias integral.
@@ -329,7 +329,7 @@ def build_collapsed_model(design, curves: CurveSet, s: ModelSettings) -> pm.Mode
     if d.groups:
         coords["group"] = d.groups
     with pm.Model(coords=coords) as model:
-        centre, lift_sd = _population_lift(d, s)
+        centre, lift_sd = population_lift(d, s)
         if not terms.corrected:
             keep = terms.is_target
             t2 = CampaignTerms(terms.pair[keep], terms.campaign[keep], terms.outcome[keep], keep[keep],
@@ -357,7 +357,7 @@ def build_collapsed_model(design, curves: CurveSet, s: ModelSettings) -> pm.Mode
     return model
 
 
-def _population_lift(d, s: ModelSettings):
+def population_lift(d, s: ModelSettings):
     """The lift's population: ``centre`` per campaign and ``lift_sd`` (fixed for a single campaign)."""
     C = d.n_campaigns
     if C == 1:

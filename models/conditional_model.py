@@ -23,6 +23,7 @@ import numpy as np
 import pymc as pm
 import pytensor.tensor as pt
 
+from liftpool.models.collapsed import population_lift
 from liftpool.models.conditional import CurveSet, curve_logp
 from liftpool.models.settings import ModelSettings
 
@@ -120,18 +121,7 @@ def build_conditional_model(design, curves: CurveSet, s: ModelSettings, shares: 
     tp = d.target_pair()
     pl = np.flatnonzero(~d.pair_is_target & curves.informative)
     with pm.Model(coords=coords) as model:
-        if single:
-            centre, lift_sd = pt.zeros(C), float(s.lift_mean_scale)
-        else:
-            lift_mean = pm.Normal("lift_mean", 0.0, s.lift_mean_scale)
-            lift_sd = pm.HalfNormal("lift_sd", s.lift_sd_scale)
-            centre = pt.ones(C) * lift_mean
-            if d.groups:
-                group_sd = pm.HalfNormal("group_sd", s.group_sd_scale)
-                gz = pm.Normal("group_z", 0.0, 1.0, dims="group")
-                g_eff = pm.Deterministic("group_effect", group_sd * gz, dims="group")
-                cg = np.maximum(d.campaign_group, 0)
-                centre = centre + pt.where(d.campaign_group >= 0, g_eff[cg], 0.0)
+        centre, lift_sd = population_lift(d, s)
         if not corrected:
             x = _partial("target_excess", centre, lift_sd, w_x, "campaign")
             psi_t = x
