@@ -331,12 +331,9 @@ def build_collapsed_model(design, curves: CurveSet, s: ModelSettings) -> pm.Mode
     with pm.Model(coords=coords) as model:
         centre, lift_sd = population_lift(d, s)
         if not terms.corrected:
-            keep = terms.is_target
-            t2 = CampaignTerms(terms.pair[keep], terms.campaign[keep], terms.outcome[keep], keep[keep],
-                               np.searchsorted(terms.campaign[keep], np.arange(d.n_campaigns + 1)),
-                               terms.n_campaigns, False, terms.single)
-            off, sd = _pair_inputs(t2, centre, lift_sd, lift_sd, None)
-            ll = CampaignLoglik(curves, t2, outer=False)(0.0, 1.0, off, sd)[0]
+            # no placebo anywhere: every term is a target, its excess the lift around its centre
+            off, sd = _pair_inputs(terms, centre, lift_sd, lift_sd, None)
+            ll = CampaignLoglik(curves, terms, outer=False)(0.0, 1.0, off, sd)[0]
             pm.Potential("campaign_loglik", ll)
             return model
         residual_sd = pm.HalfNormal("residual_sd", s.residual_sd_scale)

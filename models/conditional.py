@@ -27,7 +27,7 @@ import numpy as np
 from scipy.special import gammaln, logsumexp
 
 __all__ = ["CellTable", "cell_tables", "cell_logpmf", "cell_moments", "CurveSet", "build_curves",
-           "curve_logp", "curve_terms", "conditional_mle", "strata_moments", "CURVE_NODES", "CURVE_REACH"]
+           "curve_logp", "conditional_mle", "strata_moments", "CURVE_NODES", "CURVE_REACH"]
 
 #: Nodes per curve.
 CURVE_NODES = 240
@@ -375,21 +375,14 @@ def build_curves(cells: CellTable, n_pairs: int, n_nodes: int = CURVE_NODES) -> 
 
 def curve_logp(curves: CurveSet, psi, pairs: np.ndarray):
     """The interpolated log-likelihood of ``pairs`` at the PyTensor tensor ``psi`` (same shape as ``pairs``
-    or broadcasting against it on the last axis)."""
-    return curve_terms(curves, psi, pairs, derivatives=False)
-
-
-def curve_terms(curves: CurveSet, psi, pairs: np.ndarray, derivatives: bool = True):
-    """PyTensor twin of :meth:`CurveSet.evaluate`: the value and, with ``derivatives``, the first and
-    second derivative in ``psi`` of the interpolant (analytic, so a Newton step needs no autodiff)."""
+    or broadcasting against it on the last axis); the PyTensor twin of :meth:`CurveSet.evaluate`."""
     import pytensor.tensor as pt
 
     pairs = np.asarray(pairs)
     G = curves.f.shape[1]
     c, a = pt.as_tensor(curves.centre[pairs]), pt.as_tensor(curves.scale[pairs])
     t0, dt = pt.as_tensor(curves.t_lo[pairs]), pt.as_tensor(curves.dt[pairs])
-    z = (psi - c) / a
-    t = pt.arcsinh(z)
+    t = pt.arcsinh((psi - c) / a)
     u = (t - t0) / dt
     j = pt.cast(pt.clip(pt.floor(u), 0, G - 2), "int64")
     s = pt.clip(u - j, 0.0, 1.0)
@@ -409,17 +402,5 @@ def curve_terms(curves: CurveSet, psi, pairs: np.ndarray, derivatives: bool = Tr
     ef, e1, e2 = curves.end_f[pairs], curves.end_d1[pairs], curves.end_d2[pairs]
     below = ef[:, 0] + e1[:, 0] * lo_d + 0.5 * e2[:, 0] * lo_d**2
     above = ef[:, 1] + e1[:, 1] * hi_d + 0.5 * e2[:, 1] * hi_d**2
-    lo_side, hi_side = pt.lt(u, 0), pt.gt(u, G - 1)
-    keep = pt.as_tensor(curves.informative[pairs])
-    val = pt.switch(keep, pt.switch(lo_side, below, pt.switch(hi_side, above, inner)), 0.0)
-    if not derivatives:
-        return val
-    dv_ds = (6 * s2 - 6 * s) * f0 + (3 * s2 - 4 * s + 1) * g0 + (-6 * s2 + 6 * s) * f1 + (3 * s2 - 2 * s) * g1
-    d2v_ds2 = (12 * s - 6) * f0 + (6 * s - 4) * g0 + (-12 * s + 6) * f1 + (6 * s - 2) * g1
-    q = 1.0 + z * z
-    ds = 1.0 / (a * pt.sqrt(q) * dt)
-    d1 = dv_ds * ds
-    d2 = d2v_ds2 * ds**2 - dv_ds * z / (a**2 * q * pt.sqrt(q) * dt)
-    d1 = pt.switch(lo_side, e1[:, 0] + e2[:, 0] * lo_d, pt.switch(hi_side, e1[:, 1] + e2[:, 1] * hi_d, d1))
-    d2 = pt.switch(lo_side, e2[:, 0], pt.switch(hi_side, e2[:, 1], d2))
-    return val, pt.switch(keep, d1, 0.0), pt.switch(keep, d2, 0.0)
+    val = pt.switch(pt.lt(u, 0), below, pt.switch(pt.gt(u, G - 1), above, inner))
+    return pt.switch(pt.as_tensor(curves.informative[pairs]), val, 0.0)

@@ -370,14 +370,9 @@ def _initial_points(qcore: dict, shares, model, s: ModelSettings) -> list[dict]:
     """One start per chain: a quick-mode draw, moved into the sampler's (partially centred) variables."""
     w_b, w_x = shares
     names = {v.name for v in model.free_RVs}
-    n = qcore["target_excess"].shape[0]
-    out = []
-    for c in range(s.chains):
-        i = (c * 9973 + 17) % n
-        pt_ = {}
-        for k in ("bias_mean", "bias_sd", "residual_sd", "lift_mean", "lift_sd"):
-            if k in names:
-                pt_[k] = max(float(qcore[k][i]), 1e-3) if k.endswith("_sd") else float(qcore[k][i])
+    out = _population_starts(qcore, model, s)
+    for c, pt_ in enumerate(out):
+        i = _start_draw(c, qcore)
         mu_l = pt_.get("lift_mean", 0.0)
         if "target_excess_raw" in names:
             sd = np.sqrt(pt_.get("lift_sd", s.lift_mean_scale) ** 2 + pt_.get("residual_sd", 0.0) ** 2)
@@ -388,7 +383,6 @@ def _initial_points(qcore: dict, shares, model, s: ModelSettings) -> list[dict]:
             sd = pt_.get("bias_sd", s.bias_mean_scale)  # a single campaign: the fixed prior scale
             b = qcore["bias"][i]
             pt_["bias_raw"] = w_b * mu_b + (b - mu_b) / sd ** (1.0 - w_b)
-        out.append(pt_)
     return out
 
 
@@ -404,13 +398,17 @@ def uses_collapsed(d: Design, s: ModelSettings) -> bool:
 def _population_starts(qcore: dict, model, s: ModelSettings) -> list[dict]:
     """One start per chain for the collapsed model: a quick-mode draw of the population parameters."""
     names = {v.name for v in model.free_RVs}
-    n = qcore["target_excess"].shape[0]
     out = []
     for c in range(s.chains):
-        i = (c * 9973 + 17) % n
+        i = _start_draw(c, qcore)
         out.append({k: (max(float(qcore[k][i]), 1e-3) if k.endswith("_sd") else float(qcore[k][i]))
                     for k in ("bias_mean", "bias_sd", "residual_sd", "lift_mean", "lift_sd") if k in names})
     return out
+
+
+def _start_draw(chain: int, qcore: dict) -> int:
+    """The quick-mode draw chain ``chain`` starts from (spread over the draws)."""
+    return (chain * 9973 + 17) % qcore["target_excess"].shape[0]
 
 
 def _sample_conditional(d: Design, curves, qcore: dict, s: ModelSettings, info: dict, say, progressbar: bool,
