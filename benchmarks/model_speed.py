@@ -181,12 +181,14 @@ def bench_start(campaigns: int = 40, tune: int = 200, draws: int = 100) -> None:
     print(f"  time, ADVI start / jitter start: {res['advi+adapt_diag'] / res['jitter+adapt_diag']:.2f}x", flush=True)
 
 
-def bench_scale(draws: int = 1000, tune: int = 1000, campaigns: int = 200) -> None:
-    """campaigns x 24 cells x 6 outcomes with the default settings: time, memory, checks."""
+def bench_scale(draws: int | None = None, tune: int | None = None, campaigns: int = 200) -> None:
+    """campaigns x 24 cells x 6 outcomes with the default settings (or the draws and tuning given)."""
     counts = synthetic_counts(campaigns, 24, 6, users_per_cell=400, seed=2)
     print(f"scale: {len(counts):,} count rows ({campaigns} campaigns x 24 cells x 6 outcomes x 2 arms)", flush=True)
     t = time.perf_counter()
-    f = fit_counts(counts, ModelSettings(draws=draws, tune=tune), progress=lambda m: print(m, flush=True))
+    given = {k: v for k, v in (("draws", draws), ("tune", tune)) if v is not None}
+    f = fit_counts(counts, ModelSettings(**given), progress=lambda m: print(m, flush=True))
+    draws, tune = f.settings.draws, f.settings.tune
     secs = time.perf_counter() - t
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     peak_child = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
