@@ -39,12 +39,59 @@ from liftpool.models.backend import configure_backend
 from liftpool.models.hierarchical import build_model
 
 
+class MemoryWatch:
+    """Peak of the summed resident memory of this process and its children (the chain processes), from /proc."""
+
+    def __init__(self, every: float = 0.5):
+        import threading
+
+        self.peak_mb, self.every, self._stop = 0.0, every, threading.Event()
+        self._thread = threading.Thread(target=self._run, daemon=True)
+
+    @staticmethod
+    def _rss_mb(pid: int) -> float:
+        try:
+            with open(f"/proc/{pid}/status") as fh:
+                return next(float(line.split()[1]) for line in fh if line.startswith("VmRSS")) / 1024
+        except (OSError, StopIteration):
+            return 0.0
+
+    def _total(self) -> float:
+        me = os.getpid()
+        pids = [me]
+        for entry in os.listdir("/proc"):
+            if entry.isdigit():
+                try:
+                    with open(f"/proc/{entry}/stat") as fh:
+                        if int(fh.read().rsplit(")", 1)[1].split()[1]) == me:
+                            pids.append(int(entry))
+                except (OSError, ValueError, IndexError):
+                    continue
+        return sum(self._rss_mb(p) for p in pids)
+
+    def _run(self) -> None:
+        while not self._stop.wait(self.every):
+            self.peak_mb = max(self.peak_mb, self._total())
+
+    def __enter__(self):
+        self._thread.start()
+        return self
+
+    def __exit__(self, *exc):
+        self._stop.set()
+        self._thread.join()
+
+
+def bench_shape(n_campaigns, n_cells, n_outcomes, users_per_cell) -> Shape:
+    """n_campaigns x n_cells x n_outcomes (one target, the rest placebos) in the shape suite's terms."""
+    return Shape("bench", campaigns=n_campaigns, cells=(n_cells, n_cells), placebos=n_outcomes - 1,
+                 users=(users_per_cell * n_cells, users_per_cell * n_cells), rate=(0.02, 0.04))
+
+
 def synthetic_counts(n_campaigns, n_cells, n_outcomes, users_per_cell, seed=0) -> pd.DataFrame:
-    """Counts of n_campaigns x n_cells x n_outcomes (one target, the rest placebos) from the shape
-    suite's generative story (data_prep/shapes.py; invented data, for measurement only)."""
-    sh = Shape("bench", campaigns=n_campaigns, cells=(n_cells, n_cells), placebos=n_outcomes - 1,
-               users=(users_per_cell * n_cells, users_per_cell * n_cells), rate=(0.02, 0.04))
-    return shape_counts(sh, seed)[0]
+    """Counts of :func:`bench_shape` from the shape suite's generative story (data_prep/shapes.py;
+    invented data, for measurement only)."""
+    return shape_counts(bench_shape(n_campaigns, n_cells, n_outcomes, users_per_cell), seed)[0]
 
 
 def expand_to_users(counts: pd.DataFrame) -> pd.DataFrame:
@@ -183,11 +230,15 @@ def bench_start(campaigns: int = 40, tune: int = 200, draws: int = 100) -> None:
 
 def bench_scale(draws: int | None = None, tune: int | None = None, campaigns: int = 200) -> None:
     """campaigns x 24 cells x 6 outcomes with the default settings (or the draws and tuning given)."""
-    counts = synthetic_counts(campaigns, 24, 6, users_per_cell=400, seed=2)
+    from liftpool.models.calibration import oracle_lift
+
+    sh = bench_shape(campaigns, 24, 6, users_per_cell=400)
+    counts, truth = shape_counts(sh, 2)
     print(f"scale: {len(counts):,} count rows ({campaigns} campaigns x 24 cells x 6 outcomes x 2 arms)", flush=True)
     t = time.perf_counter()
     given = {k: v for k, v in (("draws", draws), ("tune", tune)) if v is not None}
-    f = fit_counts(counts, ModelSettings(**given), progress=lambda m: print(m, flush=True))
+    with MemoryWatch() as mem:
+        f = fit_counts(counts, ModelSettings(**given), progress=lambda m: print(m, flush=True))
     draws, tune = f.settings.draws, f.settings.tune
     secs = time.perf_counter() - t
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
@@ -201,7 +252,16 @@ def bench_scale(draws: int | None = None, tune: int | None = None, campaigns: in
           f"sampling {f.info['sampling_seconds']:.0f} s, completion {f.info.get('completion_seconds')} s); "
           f"{float(ss['n_steps'].mean()):.1f} leapfrog steps per draw; bulk ESS per draw "
           + ", ".join(f"{v} {float(ess[v]) / n:.2f}" for v in ess.data_vars)
-          + f"; peak memory {peak:,.0f} MB main process, {peak_child:,.0f} MB largest chain process", flush=True)
+          + f"; peak memory {peak:,.0f} MB main process, {peak_child:,.0f} MB largest chain process, "
+          f"{mem.peak_mb:,.0f} MB all processes together", flush=True)
+    # known truth (the shape suite's 200-campaign member): 90% coverage and width against the oracle
+    lift = f.table("lift_logodds")
+    t = truth.set_index("campaign").loc[lift.index, "lift_logodds"]
+    oracle = oracle_lift(counts, {"bias_sd": sh.bias_sd, "residual_sd": sh.residual_sd, "lift_sd": sh.lift_sd})
+    inside = int(((lift["lower"] <= t) & (t <= lift["upper"])).sum())
+    width = float((lift["upper"] - lift["lower"]).mean() / (oracle["upper"] - oracle["lower"]).mean())
+    print(f"scale known truth: 90% lift intervals cover {inside} of {len(t)} ({inside / len(t):.1%}); "
+          f"mean width {width:.2f}x the oracle's (true spreads fixed)", flush=True)
     print(f.diagnostics.render())
 
 
@@ -254,9 +314,10 @@ def bench_quick(campaigns: int = 2000) -> None:
     counts = synthetic_counts(campaigns, 24, 6, users_per_cell=400, seed=3)
     t = time.perf_counter()
     f = fit_counts(counts, ModelSettings(), quick=True)
+    secs = time.perf_counter() - t
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     print(f"quick mode, {campaigns} campaigns x 24 cells x 6 outcomes ({len(counts):,} rows): "
-          f"{time.perf_counter() - t:.1f} s (curves {f.info.get('curve_seconds')} s), peak memory {peak:,.0f} MB",
+          f"{secs:.1f} s (curves {f.info.get('curve_seconds')} s), peak memory {peak:,.0f} MB",
           flush=True)
 
 

@@ -60,6 +60,8 @@ LOG_SQRT_2PI = 0.5 * np.log(2 * np.pi)
 B_GRID = 97
 X_GRID = 49
 GRID_REACH = 6.0
+#: Draws completed at a time (bounds the completion's memory: a block's grid is COMPLETION_CHUNK x C x B_GRID).
+COMPLETION_CHUNK = 256
 
 
 @dataclass(frozen=True)
@@ -109,18 +111,21 @@ def _tables(curves: CurveSet) -> tuple:
 
 @numba.njit(cache=True, inline="always")
 def _spline(psi, p, tb):
-    """Value, slope and curvature of pair ``p``'s interpolant at ``psi`` (:meth:`CurveSet.evaluate`)."""
-    centre, scale, t_lo, dt, F, Gd, psi_lo, psi_hi, end_f, end_d1, end_d2 = tb[:11]
+    """Value, slope and curvature of pair ``p``'s interpolant at ``psi`` (:meth:`CurveSet.evaluate`).
+
+    The tables are indexed in place (unpacking the tuple costs a reference count per array per call,
+    three times the arithmetic).
+    """
+    F, Gd, dt = tb[4], tb[5], tb[3][p]
     G = F.shape[1]
-    a = scale[p]
-    z = (psi - centre[p]) / a
-    u = (np.arcsinh(z) - t_lo[p]) / dt[p]
-    if u < 0.0:
-        e = psi - psi_lo[p]
-        return end_f[p, 0] + end_d1[p, 0] * e + 0.5 * end_d2[p, 0] * e * e, end_d1[p, 0] + end_d2[p, 0] * e, end_d2[p, 0]
-    if u > G - 1:
-        e = psi - psi_hi[p]
-        return end_f[p, 1] + end_d1[p, 1] * e + 0.5 * end_d2[p, 1] * e * e, end_d1[p, 1] + end_d2[p, 1] * e, end_d2[p, 1]
+    a = tb[1][p]
+    z = (psi - tb[0][p]) / a
+    u = (np.arcsinh(z) - tb[2][p]) / dt
+    if u < 0.0 or u > G - 1:
+        side = 0 if u < 0.0 else 1
+        e = psi - (tb[6][p] if side == 0 else tb[7][p])
+        f0, d1, d2 = tb[8][p, side], tb[9][p, side], tb[10][p, side]
+        return f0 + d1 * e + 0.5 * d2 * e * e, d1 + d2 * e, d2
     j = min(int(np.floor(u)), G - 2)
     s = min(max(u - j, 0.0), 1.0)
     f0, f1, g0, g1 = F[p, j], F[p, j + 1], Gd[p, j], Gd[p, j + 1]
@@ -130,8 +135,8 @@ def _spline(psi, p, tb):
     dv = (6 * s2 - 6 * s) * f0 + (3 * s2 - 4 * s + 1) * g0 + (-6 * s2 + 6 * s) * f1 + (3 * s2 - 2 * s) * g1
     d2v = (12 * s - 6) * f0 + (6 * s - 4) * g0 + (-12 * s + 6) * f1 + (6 * s - 2) * g1
     q = 1.0 + z * z
-    ds = 1.0 / (a * np.sqrt(q) * dt[p])
-    return v, dv * ds, d2v * ds * ds - dv * z / (a * a * q * np.sqrt(q) * dt[p])
+    ds = 1.0 / (a * np.sqrt(q) * dt)
+    return v, dv * ds, d2v * ds * ds - dv * z / (a * a * q * np.sqrt(q) * dt)
 
 
 @numba.njit(cache=True, inline="always")
@@ -182,6 +187,8 @@ def _campaigns(mu_b, sd_b, off, sd, pairs, start, outer, tb, xo, lwo, xi, lwi, w
     dM_sd = np.zeros((n_terms, K))
     terms, slopes, sq = np.zeros(J), np.zeros(J), np.zeros(J)
     Mk = np.zeros((n_terms, K))
+    rw, hw = np.zeros(n_terms), np.zeros(n_terms)
+    m_prev = 0.0
     ib = 1.0 / (sd_b * sd_b)
     for c in range(C):
         lo, hi = start[c], start[c + 1]
@@ -193,14 +200,21 @@ def _campaigns(mu_b, sd_b, off, sd, pairs, start, outer, tb, xo, lwo, xi, lwi, w
                 H += w
                 S += w * (mode[pairs[i]] - off[i])
             m = S / H
-            for _ in range(OUTER_STEPS):
+            m_prev = m
+            for it in range(OUTER_STEPS):
                 grad, H = -(m - mu_b) * ib, ib
                 for i in range(lo, hi):
                     p, e = pairs[i], m + off[i]
-                    r0 = info[p] * (mode[p] - e) / (info[p] + 1.0 / sd[i] ** 2)
-                    r, h, _ = _inner_peak(e, sd[i], p, r0, INNER_STEPS, tb)
+                    if it == 0:
+                        r0 = info[p] * (mode[p] - e) / (info[p] + 1.0 / sd[i] ** 2)
+                        r, h, _ = _inner_peak(e, sd[i], p, r0, INNER_STEPS, tb)
+                    else:  # warm start: the last peak, moved linearly with the centre
+                        r0 = rw[i] - hw[i] / (hw[i] + 1.0 / sd[i] ** 2) * (m - m_prev)
+                        r, h, _ = _inner_peak(e, sd[i], p, r0, 1, tb)
+                    rw[i], hw[i] = r, h
                     grad += r / sd[i] ** 2
                     H += h / (1.0 + sd[i] ** 2 * h)
+                m_prev = m
                 m += min(max(grad / H, -3.0 / np.sqrt(H)), 3.0 / np.sqrt(H))
             half = np.sqrt(2.0 / H)
         else:
@@ -208,29 +222,39 @@ def _campaigns(mu_b, sd_b, off, sd, pairs, start, outer, tb, xo, lwo, xi, lwi, w
         m_out[c], half_out[c] = m, half
         nk = K if outer else 1
         for i in range(lo, hi):
-            # each term's peak at the outer centre; at each node a linear prediction and one Newton step
+            # each term's peak at the outer centre, and at each node its linear prediction from there
             p, s_ = pairs[i], sd[i]
             iv = 1.0 / (s_ * s_)
+            log_s = np.log(s_)
             e = m + off[i]
-            r0 = info[p] * (mode[p] - e) / (info[p] + iv)
-            rm, hm, _ = _inner_peak(e, s_, p, r0, INNER_STEPS, tb)
+            if outer:
+                r0 = rw[i] - hw[i] / (hw[i] + iv) * (m - m_prev)
+                rm, hm, _ = _inner_peak(e, s_, p, r0, 1, tb)
+            else:
+                r0 = info[p] * (mode[p] - e) / (info[p] + iv)
+                rm, hm, _ = _inner_peak(e, s_, p, r0, INNER_STEPS, tb)
             kk = hm / (hm + iv)
             for k in range(nk):
                 dx = half * xo[k] if outer else 0.0
-                r, _, prec = _inner_peak(e + dx, s_, p, rm - kk * dx, 1, tb)
+                r, prec = rm - kk * dx, hm + iv
                 hr = np.sqrt(2.0 / prec)
+                mx = -np.inf
                 for j in range(J):
                     rj = r + hr * xi[j]
                     v, d1, _ = _spline(e + dx + rj, p, tb)
                     terms[j] = lwi[j] + v - 0.5 * (rj * rj) * iv
                     slopes[j] = d1
                     sq[j] = rj * rj
-                Mi = _logsumexp(terms, J)
-                Mk[i, k] = Mi + np.log(hr) - LOG_SQRT_2PI - np.log(s_)
+                    mx = max(mx, terms[j])
+                acc = 0.0
+                for j in range(J):
+                    terms[j] = np.exp(terms[j] - mx)
+                    acc += terms[j]
+                Mk[i, k] = mx + np.log(acc) + np.log(hr) - LOG_SQRT_2PI - log_s
                 if want_grad:
                     go, gs = 0.0, 0.0
                     for j in range(J):
-                        nu = np.exp(terms[j] - Mi)
+                        nu = terms[j] / acc
                         go += nu * slopes[j]
                         gs += nu * (sq[j] * iv - 1.0) / s_
                     dM_off[i, k], dM_sd[i, k] = go, gs
@@ -260,6 +284,17 @@ def _campaigns(mu_b, sd_b, off, sd, pairs, start, outer, tb, xo, lwo, xi, lwi, w
                     d_off[i] += pik * dM_off[i, k]
                     d_sd[i] += pik * dM_sd[i, k]
     return loglik, d_mu, d_sdb, d_off, d_sd, m_out, half_out, f
+
+
+@numba.njit(cache=True, parallel=True)
+def _outer_nodes(mu_b, sd_b, off, sd, pairs, start, tb, xo, lwo, xi, lwi):
+    """:func:`_campaigns`'s outer centres, half-widths and node integrands for many draws (rows), in parallel."""
+    D, C = mu_b.size, start.size - 1
+    m, half, f = np.zeros((D, C)), np.zeros((D, C)), np.zeros((D, C, xo.size))
+    for i in numba.prange(D):
+        _, _, _, _, _, m[i], half[i], f[i] = _campaigns(mu_b[i], sd_b[i], off[i], sd[i], pairs, start, True, tb,
+                                                        xo, lwo, xi, lwi, False)
+    return m, half, f
 
 
 def _gh(n):
@@ -455,17 +490,18 @@ def campaign_draws(design, curves: CurveSet, s: ModelSettings, post: dict, rng: 
         mu = np.zeros(D) if single else post["bias_mean"]
         sdb = np.full(D, float(s.bias_mean_scale)) if single else post["bias_sd"]
         pairs = terms.pair.astype(np.int64)
-        m, half, f = np.zeros((D, C)), np.zeros((D, C)), np.zeros((D, C, OUTER_NODES))
-        for i in range(D):
-            off = np.where(terms.is_target, centre[i, terms.campaign], 0.0)
+        for lo in range(0, D, COMPLETION_CHUNK):  # in blocks of draws: the grid is (draws, C, B_GRID)
+            sl = slice(lo, min(D, lo + COMPLETION_CHUNK))
+            off = np.where(terms.is_target, centre[sl][:, terms.campaign], 0.0)
             if ob is not None:
-                off = off + ob[i, terms.outcome]
-            sd = np.where(terms.is_target, tau[i], sr[i])
-            _, _, _, _, _, m[i], half[i], f[i] = _campaigns(float(mu[i]), float(sdb[i]), off, sd, pairs, terms.start,
-                                                            True, tb, xo, lwo, xi, lwi, False)
-        rho = f + xo**2  # the integrand over its Gaussian envelope: smooth, so interpolated
-        logd = -zb**2 + rho @ L.T
-        bias = m + half * _grid_draw(zb, logd, rng)
+                off = off + ob[sl][:, terms.outcome]
+            sd = np.where(terms.is_target, tau[sl, None], sr[sl, None])
+            m, half, f = _outer_nodes(np.ascontiguousarray(mu[sl], dtype=float), np.ascontiguousarray(sdb[sl], dtype=float),
+                                      np.ascontiguousarray(off, dtype=float), np.ascontiguousarray(sd, dtype=float),
+                                      pairs, terms.start, tb, xo, lwo, xi, lwi)
+            rho = f + xo**2  # the integrand over its Gaussian envelope: smooth, so interpolated
+            logd = -zb**2 + rho @ L.T
+            bias[sl] = m + half * _grid_draw(zb, logd, rng)
     tp = d.target_pair()
     o_t = ob[:, d.pair_outcome[tp]] if ob is not None else 0.0
     eta = bias + o_t

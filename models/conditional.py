@@ -1,4 +1,4 @@
-"""The conditional likelihood of stratified 2x2 tables, exact in NumPy, and its smooth interpolant.
+"""The conditional likelihood of stratified 2x2 tables, computed exactly (compiled), and its smooth interpolant.
 
 Given a cell's margins (seen users ``n1``, unseen users ``n0``, total conversions ``m``), the
 seen conversions follow Fisher's noncentral hypergeometric distribution with the odds ratio
@@ -21,8 +21,10 @@ PyTensor (:func:`curve_logp`), and the tests hold them equal.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
+import numba
 import numpy as np
 from scipy.special import gammaln, logsumexp
 
@@ -131,12 +133,83 @@ def cell_moments(n1: int, n0: int, m: int, psi) -> tuple[np.ndarray, np.ndarray,
     return norm, mean, var
 
 
-def strata_moments(cells: CellTable, idx: np.ndarray, psi: np.ndarray,
-                   chunk: int = 2_000_000) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+@numba.njit(cache=True)
+def _log_choose_1(n, k):
+    return math.lgamma(n + 1.0) - math.lgamma(k + 1.0) - math.lgamma(n - k + 1.0)
+
+
+@numba.njit(cache=True)
+def _stratum_fgh(n1, n0, m, x1, psi, q, f, g, h, add):
+    """One stratum's log-likelihood and its two derivatives at each ``psi``, into (or onto) f, g, h.
+
+    The normalizing sum runs over the whole support ``lo..hi`` by the ratio of consecutive terms,
+    ``q_u exp(psi)`` with ``q_u = (n1 - u)(m - u) / ((u + 1)(n0 - m + u + 1))``, rescaled whenever it
+    grows large: no exponential per term, and exact to rounding.
+    """
+    lo, hi = max(0, m - n0), min(n1, m)
+    W = hi - lo + 1
+    for j in range(W - 1):
+        u = lo + j
+        q[j] = (n1 - u) * (m - u) / ((u + 1.0) * (n0 - m + u + 1.0))
+    const = _log_choose_1(n1, x1) + _log_choose_1(n0, m - x1)
+    w_lo = _log_choose_1(n1, lo) + _log_choose_1(n0, m - lo)
+    for i in range(psi.size):
+        ps = psi[i]
+        e = math.exp(ps)
+        t, s0, s1, s2, scale = 1.0, 0.0, 0.0, 0.0, 0.0
+        for j in range(W):
+            s0 += t
+            s1 += t * j
+            s2 += t * j * j
+            if j < W - 1:
+                t *= q[j] * e
+                if t > 1e150:
+                    t *= 1e-150
+                    s0 *= 1e-150
+                    s1 *= 1e-150
+                    s2 *= 1e-150
+                    scale += 345.38776394910684  # log(1e150)
+        mean = s1 / s0
+        var = max(s2 / s0 - mean * mean, 0.0)
+        norm = w_lo + lo * ps + scale + math.log(s0)
+        fi, gi, hi_ = const + x1 * ps - norm, x1 - (lo + mean), -var
+        if add:
+            f[i] += fi
+            g[i] += gi
+            h[i] += hi_
+        else:
+            f[i], g[i], h[i] = fi, gi, hi_
+
+
+@numba.njit(cache=True, parallel=True)
+def _strata_kernel(n1, n0, m, x1, psi):
+    S, G = psi.shape
+    f, g, h = np.zeros((S, G)), np.zeros((S, G)), np.zeros((S, G))
+    for k in numba.prange(S):
+        q = np.empty(max(1, min(n1[k], m[k]) - max(0, m[k] - n0[k]) + 1))
+        _stratum_fgh(n1[k], n0[k], m[k], x1[k], psi[k], q, f[k], g[k], h[k], False)
+    return f, g, h
+
+
+@numba.njit(cache=True, parallel=True)
+def _pairs_kernel(start, n1, n0, m, x1, psi):
+    P, G = psi.shape
+    f, g, h = np.zeros((P, G)), np.zeros((P, G)), np.zeros((P, G))
+    for p in numba.prange(P):
+        for k in range(start[p], start[p + 1]):
+            q = np.empty(max(1, min(n1[k], m[k]) - max(0, m[k] - n0[k]) + 1))
+            _stratum_fgh(n1[k], n0[k], m[k], x1[k], psi[p], q, f[p], g[p], h[p], True)
+    return f, g, h
+
+
+def _ints(v) -> np.ndarray:
+    return np.ascontiguousarray(v, dtype=np.int64)
+
+
+def strata_moments(cells: CellTable, idx: np.ndarray, psi: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Each stratum's (log-likelihood, its derivative, its second derivative) at its own log odds ratios.
 
-    Exact: every stratum's whole support enters the normalizing sum.  Strata are handled in
-    batches of similar support size, padded, so the work is vectorized and its memory bounded.
+    Exact: every stratum's whole support enters the normalizing sum (compiled, in parallel over strata).
 
     Parameters
     ----------
@@ -150,55 +223,19 @@ def strata_moments(cells: CellTable, idx: np.ndarray, psi: np.ndarray,
     -------
     f, g, h : ndarray, shape (S, G)
     """
-    psi = np.asarray(psi, dtype=float)
-    S, G = psi.shape
-    f, g, h = np.zeros((S, G)), np.zeros((S, G)), np.zeros((S, G))
-    size = cells.hi[idx] - cells.lo[idx] + 1
-    order = np.argsort(size, kind="stable")
-    start = 0
-    while start < S:
-        width = int(size[order[start]])
-        cap = max(1, chunk // max(1, 2 * width * G))
-        stop = min(S, start + cap)
-        # keep a batch's padding small: supports within 2x of its first
-        stop = start + max(1, int(np.searchsorted(size[order[start:stop]], 2 * width, side="right")))
-        rows = order[start:stop]
-        b = idx[rows]
-        W = int(size[order[stop - 1]])
-        u = cells.lo[b][:, None] + np.arange(W)[None, :]
-        valid = u <= cells.hi[b][:, None]
-        uf = u.astype(float)
-        n1, n0, m = (cells.n1[b][:, None].astype(float), cells.n0[b][:, None].astype(float),
-                     cells.m[b][:, None].astype(float))
-        with np.errstate(invalid="ignore"):
-            w = np.where(valid, _log_choose(n1, uf) + _log_choose(n0, m - uf), -np.inf)
-        a = w[:, None, :] + uf[:, None, :] * psi[rows][:, :, None]  # (B, G, W)
-        mx = a.max(axis=2, keepdims=True)
-        e = np.exp(a - mx)
-        s0 = e.sum(axis=2)
-        s1 = (e * uf[:, None, :]).sum(axis=2)
-        s2 = (e * (uf * uf)[:, None, :]).sum(axis=2)
-        norm = mx[..., 0] + np.log(s0)
-        mean = s1 / s0
-        var = np.maximum(s2 / s0 - mean**2, 0.0)
-        x1 = cells.x1[b].astype(float)[:, None]
-        const = (_log_choose(cells.n1[b], cells.x1[b]) + _log_choose(cells.n0[b], cells.x0[b]))[:, None]
-        f[rows] = const + x1 * psi[rows] - norm
-        g[rows] = x1 - mean
-        h[rows] = -var
-        start = stop
-    return f, g, h
+    idx = np.asarray(idx)
+    psi = np.ascontiguousarray(psi, dtype=float)
+    return _strata_kernel(_ints(cells.n1[idx]), _ints(cells.n0[idx]), _ints(cells.m[idx]), _ints(cells.x1[idx]), psi)
 
 
 def _pair_sums(cells: CellTable, idx: np.ndarray, psi_pair: np.ndarray, n_pairs: int):
     """Sum over strata of (f, g, h) per pair, each pair evaluated at its own ``psi_pair[p]`` (P, G)."""
-    f, g, h = strata_moments(cells, idx, psi_pair[cells.pair[idx]])
-    out = []
-    for a in (f, g, h):
-        tot = np.zeros((n_pairs, a.shape[1]))
-        np.add.at(tot, cells.pair[idx], a)
-        out.append(tot)
-    return out
+    idx = np.asarray(idx)
+    idx = idx[np.argsort(cells.pair[idx], kind="stable")]
+    start = np.searchsorted(cells.pair[idx], np.arange(n_pairs + 1)).astype(np.int64)
+    f, g, h = _pairs_kernel(start, _ints(cells.n1[idx]), _ints(cells.n0[idx]), _ints(cells.m[idx]),
+                            _ints(cells.x1[idx]), np.ascontiguousarray(psi_pair, dtype=float))
+    return [f, g, h]
 
 
 def conditional_mle(cells: CellTable, idx: np.ndarray, penalized: bool = False,

@@ -303,9 +303,11 @@ def _run_sampler(model, s: ModelSettings, info: dict, say, progressbar: bool, in
 
     def run(init: str) -> az.InferenceData:
         with model:
+            if "step" not in extra:  # a given step carries its own target_accept
+                extra["target_accept"] = s.accept
             return pm.sample(draws=s.draws, tune=s.tune, chains=s.chains,
                              cores=min(s.chains, default_cores()), random_seed=s.seed,
-                             target_accept=s.accept, nuts_sampler=s.sampler, init=init,
+                             nuts_sampler=s.sampler, init=init,
                              n_init=s.advi_iterations, progressbar=progressbar,
                              compute_convergence_checks=False, **extra)
 
@@ -406,6 +408,53 @@ def _population_starts(qcore: dict, model, s: ModelSettings) -> list[dict]:
     return out
 
 
+#: Pseudo-draws the quick mode's covariance counts for in the dense mass matrix's first window.
+SEED_WEIGHT = 50
+
+
+def _seeded_step(model, qcore: dict, s: ModelSettings):
+    """NUTS with a dense mass matrix that starts from the quick mode's posterior covariance.
+
+    The covariance is of the quick draws mapped to the sampler's unconstrained space; variables the
+    quick mode does not draw (group or outcome effects) start uncorrelated with unit variance, as
+    PyMC's own start does. The matrix is then adapted as usual in the tuning steps.
+    """
+    import pymc as pm
+    from pymc.step_methods.hmc.quadpotential import QuadPotentialFullAdapt
+
+    point = model.initial_point()
+    n_draws = qcore["target_excess"].shape[0]
+    cols, mean = [], []
+    for value in model.value_vars:
+        rv = model.values_to_rvs[value]
+        size = point[value.name].size
+        x = qcore.get(rv.name)
+        if x is not None and np.size(x) == n_draws * size:
+            x = np.asarray(x, float).reshape(n_draws, size)
+            tr = model.rvs_to_transforms.get(rv)
+            if tr is not None:
+                x = np.asarray(tr.forward(np.maximum(x, 1e-6), *rv.owner.inputs).eval(), float)
+            cols.append(x)
+            mean.append(x.mean(axis=0))
+        else:
+            cols.append(None)
+            mean.append(np.ravel(point[value.name]))
+    n = sum(m.size for m in mean)
+    cov = np.eye(n)
+    known = [i for i, c in enumerate(cols) if c is not None]
+    if known:
+        idx = np.concatenate([np.arange(sum(m.size for m in mean[:i]), sum(m.size for m in mean[:i + 1]))
+                              for i in known])
+        block = np.atleast_2d(np.cov(np.concatenate([cols[i] for i in known], axis=1), rowvar=False))
+        block += np.eye(len(idx)) * 1e-8
+        cov[np.ix_(idx, idx)] = block
+    with warnings.catch_warnings():  # "experimental": in PyMC since 3.x, tested here (tests/test_shapes.py)
+        warnings.filterwarnings("ignore", message="QuadPotentialFullAdapt is an experimental feature")
+        potential = QuadPotentialFullAdapt(n, np.concatenate(mean), cov, SEED_WEIGHT,
+                                           rng=np.random.default_rng(s.seed))
+    return pm.NUTS(vars=model.value_vars, model=model, potential=potential, target_accept=s.accept)
+
+
 def _start_draw(chain: int, qcore: dict) -> int:
     """The quick-mode draw chain ``chain`` starts from (spread over the draws)."""
     return (chain * 9973 + 17) % qcore["target_excess"].shape[0]
@@ -443,7 +492,13 @@ def _sample_conditional(d: Design, curves, qcore: dict, s: ModelSettings, info: 
     if s.sampler == "pymc" and init == "auto":
         init = "adapt_diag"
         extra["initvals"] = starts
+        if collapsed:
+            # a dense mass matrix seeded with the quick mode's covariance: few parameters, often correlated
+            init = "adapt_full"
+            extra["step"] = _seeded_step(model, qcore, s)
     idata = _run_sampler(model, s, info, say, progressbar, init, **extra)
+    if "step" in extra:
+        info["init"] = "adapt_full, seeded with the quick mode's covariance"
     info["sampling_seconds"] = round(time.perf_counter() - t0, 2)
     post = idata.posterior
     if collapsed:
