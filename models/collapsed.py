@@ -16,7 +16,7 @@ campaigns are independent, and each campaign's likelihood is a nested one-dimens
 target, since its excess ``x_c`` enters like a residual around ``centre_c``).  Both integrals are
 computed by adaptive Gauss-Hermite quadrature: each is centred and scaled by Newton steps on its own
 integrand (the curves' analytic slope and curvature), so it is exact for Gaussian curves and
-accurate to about 1e-5 on sparse ones (tests/test_collapsed.py, against dense trapezoid sums).
+accurate to about 5e-5 on sparse ones at wide spreads (tests/test_collapsed.py, against dense trapezoid sums).
 
 The sampler then moves in the population-level parameters only (5 at most without groups or
 outcome biases, however many campaigns), a space with no funnel: there is no campaign-level
