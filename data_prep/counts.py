@@ -26,6 +26,7 @@ from liftpool.data_prep.rules import CountingRules
 __all__ = [
     "COUNTS_COLUMNS",
     "ARMS",
+    "RESERVED_CAMPAIGNS",
     "ROLES",
     "PrepSummary",
     "finalize",
@@ -37,6 +38,8 @@ __all__ = [
 
 COUNTS_COLUMNS = ["campaign", "cell", "arm", "outcome", "role", "users", "conversions"]
 ARMS = ("seen", "unseen", "unexposed")
+#: Campaign names the reports use for their pooled rows (models/summary.py takes them from here).
+RESERVED_CAMPAIGNS = ("(portfolio)", "(new campaign)")
 ROLES = ("target", "placebo")
 _KEYS = ["campaign", "cell", "arm", "outcome"]
 
@@ -321,6 +324,24 @@ def validate_counts(df: pd.DataFrame, label: str = "counts table") -> pd.DataFra
             mask = ((df["campaign"] == c) & (df["role"] == "target")).to_numpy() if n else (df["campaign"] == c).to_numpy()
             raise InputError(problem=f"campaign '{c}' has {n} target outcomes", file=label, column="role",
                              rows=bad_rows(mask, "outcome"), fix="give each campaign exactly one target outcome")
+    # names the reports use for their pooled rows cannot be campaigns
+    reserved = df["campaign"].isin(RESERVED_CAMPAIGNS).to_numpy()
+    if reserved.any():
+        raise InputError(problem=f"{int(reserved.sum())} row(s) use a reserved campaign name "
+                                 f"({', '.join(RESERVED_CAMPAIGNS)}: the report's pooled rows)",
+                         file=label, column="campaign", rows=bad_rows(reserved, "campaign"), n_bad=int(reserved.sum()),
+                         fix="rename the campaign")
+    # every campaign's target needs users in both the seen and the unseen arm (the comparison itself)
+    tgt = df[(df["role"] == "target") & df["arm"].isin(["seen", "unseen"])]
+    have = tgt[tgt["users"] > 0].groupby("campaign")["arm"].agg(lambda a: set(a))
+    for c in df["campaign"].unique():
+        missing = sorted({"seen", "unseen"} - have.get(c, set()))
+        if missing:
+            mask = ((df["campaign"] == c) & (df["role"] == "target")).to_numpy()
+            raise InputError(problem=f"campaign '{c}' has no {' and no '.join(missing)} users for its target outcome",
+                             file=label, column="arm", rows=bad_rows(mask, "arm"),
+                             fix="each campaign needs target rows for seen and for unseen users (the unexposed arm "
+                                 "alone is not a comparison); drop the campaign or add its rows")
     return df[COUNTS_COLUMNS].sort_values(_KEYS).reset_index(drop=True)
 
 

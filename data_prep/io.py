@@ -16,7 +16,8 @@ from pathlib import Path
 
 import pandas as pd
 
-__all__ = ["atomic_path", "atomic_folder", "write_table", "write_json", "write_text", "read_table", "file_sha256"]
+__all__ = ["atomic_path", "atomic_folder", "write_table", "write_json", "write_text", "read_table", "file_sha256",
+           "input_sha256"]
 
 
 @contextlib.contextmanager
@@ -116,3 +117,23 @@ def file_sha256(path: str | os.PathLike) -> str:
         for block in iter(lambda: f.read(1 << 20), b""):
             h.update(block)
     return h.hexdigest()
+
+
+def input_sha256(inputs) -> dict[str, str]:
+    """SHA-256 of every local input file, keyed ``"<kind>[<n>] <file name>"`` (the one key format of the
+    prep summary's provenance, from the command line and from a workspace alike).
+
+    Parameters
+    ----------
+    inputs : mapping
+        Input kind (impressions, conversions, ...) to a path, a list of paths, or None. Remote paths
+        (``scheme://``, read by Spark) and folders are not hashed.
+    """
+    out = {}
+    for kind, v in inputs.items():
+        if v is None:
+            continue
+        for n, p in enumerate(v if isinstance(v, (list, tuple)) else [v]):
+            if "://" not in str(p) and Path(p).is_file():
+                out[f"{kind}[{n}] {Path(p).name}"] = file_sha256(p)
+    return out

@@ -73,7 +73,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--spend", help="optional spend file: campaign, spend, value_per_conversion (checked here)")
     p.add_argument("--out", help="counts file to write (.parquet or .csv); the summary is "
                    "written beside it as <name>.summary.json")
-    p.add_argument("--engine", default="duckdb", choices=["duckdb", "pandas", "spark"],
+    from liftpool.data_prep.prepare import ENGINES
+
+    p.add_argument("--engine", default=ENGINES[0], choices=ENGINES,
                    help="counting engine (default duckdb: out of core; spark: the same SQL on Apache Spark, "
                         "needs liftpool[spark], docs/spark.md)")
     p.add_argument("--spark-master", help="Spark master for --engine spark, e.g. local[4] (default: the one "
@@ -170,14 +172,10 @@ def _prepare_workspace(args, console: Console) -> int:
 
 
 def input_hashes(args) -> dict:
-    from liftpool.data_prep.io import file_sha256
+    from liftpool.data_prep.io import input_sha256
 
-    out = {}
-    for k in ("impressions", "conversions", "outcomes", "users", "spend"):
-        v = getattr(args, k, None)
-        if v and "://" not in str(v) and Path(v).is_file():  # remote or folder inputs (Spark) are not hashed
-            out[k] = file_sha256(v)
-    return out
+    return input_sha256({k: getattr(args, k, None) for k in ("impressions", "conversions", "outcomes", "users",
+                                                              "spend")})
 
 
 def _cmd_simulate(args, console: Console) -> int:

@@ -9,22 +9,41 @@ __all__ = ["register", "settings_from_args", "overrides_from_args", "model_args"
 
 
 def model_args(p: argparse.ArgumentParser) -> None:
+    """The model options; their choices and defaults come from :mod:`liftpool.models.settings` (one place)."""
+    from liftpool.models.settings import (
+        BIAS_SIGNS,
+        DEFAULT_ACCEPT,
+        INITS,
+        LIKELIHOODS,
+        PARAMETERIZATIONS,
+        SAMPLERS,
+        SMALL_PORTFOLIO,
+        SMALL_PORTFOLIO_ACCEPT,
+        ModelSettings,
+    )
+
+    d = ModelSettings()
     g = p.add_argument_group("model and sampler (defaults in docs/model.md)")
     g.add_argument("--quick", action="store_true", help="quick mode: stratified estimates pooled exactly, seconds")
-    g.add_argument("--chains", type=int, help="NUTS chains (default 4)")
-    g.add_argument("--draws", type=int, help="kept draws per chain (default 2000)")
-    g.add_argument("--tune", type=int, help="tuning steps per chain (default 1000)")
-    g.add_argument("--seed", type=int, help="random seed (recorded with the fit)")
-    g.add_argument("--level", type=float, help="credible-interval level (default 0.9)")
-    g.add_argument("--sampler", choices=["pymc", "nutpie", "numpyro"], help="NUTS implementation (default pymc)")
-    g.add_argument("--likelihood", choices=["conditional", "binomial"],
-                   help="conditional (default): cell baselines conditioned away, campaign effects integrated; "
+    g.add_argument("--chains", type=int, help=f"NUTS chains (default {d.chains})")
+    g.add_argument("--draws", type=int, help=f"kept draws per chain (default {d.draws})")
+    g.add_argument("--tune", type=int, help=f"tuning steps per chain (default {d.tune})")
+    g.add_argument("--seed", type=int, help=f"random seed (default {d.seed}; recorded with the fit)")
+    g.add_argument("--level", type=float, help=f"credible-interval level (default {d.level:g})")
+    g.add_argument("--sampler", choices=SAMPLERS, help=f"NUTS implementation (default {d.sampler})")
+    g.add_argument("--likelihood", choices=LIKELIHOODS,
+                   help=f"default {d.likelihood}: cell baselines conditioned away, campaign effects integrated; "
                         "binomial: the earlier reference model, every cell baseline sampled (docs/model.md)")
-    g.add_argument("--init", choices=["auto", "advi+adapt_diag", "jitter+adapt_diag"],
-                   help="how PyMC's NUTS starts (default auto: ADVI for large models)")
-    g.add_argument("--target-accept", type=float, help="NUTS target acceptance (default 0.95; 0.99 for --likelihood binomial)")
-    g.add_argument("--parameterization", choices=["auto", "noncentered", "centered"], help="of sampled campaign-level effects (binomial model, or --bias-sign nonnegative; default noncentered)")
-    g.add_argument("--bias-sign", choices=["any", "nonnegative"], help="constrain each campaign's bias to >= 0")
+    g.add_argument("--init", choices=INITS, help=f"how PyMC's NUTS starts (default {d.init})")
+    g.add_argument("--target-accept", type=float,
+                   help=f"NUTS target acceptance (default {DEFAULT_ACCEPT['conditional']:g}, "
+                        f"{SMALL_PORTFOLIO_ACCEPT:g} for at most {SMALL_PORTFOLIO} campaigns; "
+                        f"{DEFAULT_ACCEPT['binomial']:g} for --likelihood binomial)")
+    g.add_argument("--parameterization", choices=PARAMETERIZATIONS,
+                   help="of sampled campaign-level effects (binomial model, or --bias-sign nonnegative; "
+                        f"default {d.parameterization})")
+    g.add_argument("--bias-sign", choices=BIAS_SIGNS,
+                   help=f"nonnegative: constrain each campaign's bias to >= 0 (default {d.bias_sign})")
     g.add_argument("--outcome-bias", action="store_true", help="add a bias effect per outcome shared by campaigns")
     g.add_argument("--groups", help="CSV with campaign,group (e.g. product line): a further pooling level")
     g.add_argument("--strict", action="store_true", help="exit with code 3 when the fit did not converge")

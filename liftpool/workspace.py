@@ -29,9 +29,15 @@ from pathlib import Path
 import pandas as pd
 import tomli_w
 
-from liftpool.data_prep import CountingRules, PrepSummary, prepare_counts
+from liftpool.data_prep import ENGINES, CountingRules, PrepSummary, prepare_counts
 from liftpool.data_prep.errors import ConfigError, InputError, LiftpoolError
-from liftpool.data_prep.io import atomic_folder, file_sha256, read_table, write_json, write_text
+from liftpool.data_prep.io import (
+    atomic_folder,
+    input_sha256,
+    read_table,
+    write_json,
+    write_text,
+)
 from liftpool.models import FitResult, ModelSettings, fit_counts, load_fit
 
 __all__ = ["Workspace", "WorkspaceBusyError", "CONFIG_NAME", "REPORT_KEYS", "INPUT_KEYS"]
@@ -39,7 +45,8 @@ __all__ = ["Workspace", "WorkspaceBusyError", "CONFIG_NAME", "REPORT_KEYS", "INP
 CONFIG_NAME = "liftpool.toml"
 SECTIONS = ("inputs", "prepare", "counting", "model", "report")
 PREPARE_KEYS = ("engine", "spark_master")
-PREPARE_ENGINES = ("duckdb", "spark")
+#: The engines a workspace prepares with: the out-of-core ones (pandas reads whole logs into memory).
+PREPARE_ENGINES = tuple(e for e in ENGINES if e != "pandas")
 INPUT_KEYS = ("impressions", "conversions", "outcomes", "users", "spend")
 REPORT_KEYS = ("currency", "level", "title")
 
@@ -92,7 +99,8 @@ class Workspace:
         if window_days is not None:
             counting["window_days"] = float(window_days)
         config = {"inputs": cfg_inputs, "counting": counting, "model": dict(model or {}),
-                  "report": {"currency": "USD", "level": 0.9, **(report or {})}}
+                  # no report level by default: a report is at its fit's level unless one is set here
+                  "report": {"currency": "USD", **(report or {})}}
         if prepare:
             config["prepare"] = dict(prepare)
         ws = cls(path, cls._validate(config, str(path / CONFIG_NAME)))
@@ -286,12 +294,7 @@ class Workspace:
 
     def _hashes(self, config: dict | None = None) -> dict:
         i = (config or self.config)["inputs"]
-        out = {}
-        for k in INPUT_KEYS:
-            for n, p in enumerate(_as_list(i[k]) if k in i else []):
-                if "://" not in str(p) and Path(p).is_file():  # remote inputs (Spark) are not hashed
-                    out[f"{k}[{n}] {Path(p).name}"] = file_sha256(p)
-        return out
+        return input_sha256({k: _as_list(i[k]) for k in INPUT_KEYS if k in i})
 
     def _stage_new_outcomes(self, outcomes_file, conversions) -> tuple[dict, pd.DataFrame, dict, list[str]]:
         """Check the new outcomes, keep a copy in ``inputs/`` and return (inputs, new rows, new config,

@@ -39,6 +39,7 @@ import pytensor.tensor as pt
 from pytensor.graph.basic import Apply
 from pytensor.graph.op import Op
 
+from liftpool.models.completion import lift_spread
 from liftpool.models.conditional import CurveSet
 from liftpool.models.settings import ModelSettings
 
@@ -339,12 +340,13 @@ class CampaignLoglik(Op):
 
 
 def _pair_inputs(terms: CampaignTerms, centre, tau, sr, ob):
+    """``tau`` is per campaign (C,): the target excess's spread; ``sr`` the placebo residuals' (scalar)."""
     """Each term's offset (outcome bias, plus the lift's centre for a target) and spread."""
     is_t = terms.is_target
     off = pt.switch(is_t, centre[terms.campaign], 0.0)
     if ob is not None:
         off = off + ob[terms.outcome]
-    sd = pt.switch(is_t, tau, sr) * pt.ones(terms.pair.size)
+    sd = pt.switch(is_t, tau[terms.campaign], sr) * pt.ones(terms.pair.size)
     return off, sd
 
 
@@ -367,7 +369,7 @@ def build_collapsed_model(design, curves: CurveSet, s: ModelSettings) -> pm.Mode
         centre, lift_sd = population_lift(d, s)
         if not terms.corrected:
             # no placebo anywhere: every term is a target, its excess the lift around its centre
-            off, sd = _pair_inputs(terms, centre, lift_sd, lift_sd, None)
+            off, sd = _pair_inputs(terms, centre, lift_sd, 1.0, None)
             ll = CampaignLoglik(curves, terms, outer=False)(0.0, 1.0, off, sd)[0]
             pm.Potential("campaign_loglik", ll)
             return model
@@ -390,20 +392,31 @@ def build_collapsed_model(design, curves: CurveSet, s: ModelSettings) -> pm.Mode
 
 
 def population_lift(d, s: ModelSettings):
-    """The lift's population: ``centre`` per campaign and ``lift_sd`` (fixed for a single campaign)."""
+    """The lift's population: its ``centre`` and ``spread`` per campaign (C,).
+
+    ``spread`` is ``lift_sd`` (fixed at the prior scale for a single campaign). With groups, a
+    grouped campaign's centre adds its group's effect; a campaign without a group keeps the
+    portfolio's centre and its group effect is unknown, a fresh N(0, group_sd) draw, so its spread is
+    ``sqrt(lift_sd^2 + group_sd^2)`` (:func:`lift_spread`, the same rule in the completion).
+    """
     C = d.n_campaigns
     if C == 1:
-        return pt.zeros(1), pt.as_tensor(float(s.lift_mean_scale))
+        return pt.zeros(1), pt.ones(1) * float(s.lift_mean_scale)
     lift_mean = pm.Normal("lift_mean", 0.0, s.lift_mean_scale)
     lift_sd = pm.HalfNormal("lift_sd", s.lift_sd_scale)
     centre = pt.ones(C) * lift_mean
     if d.groups:
         group_sd = pm.HalfNormal("group_sd", s.group_sd_scale)
-        gz = pm.Normal("group_z", 0.0, 1.0, dims="group")
-        g_eff = pm.Deterministic("group_effect", group_sd * gz, dims="group")
+        # centred: each group's effect is pinned by its campaigns (several per group), and the one
+        # weak direction (the groups' mean against lift_mean) is linear, which the dense mass matrix
+        # handles; the non-centred form put a funnel there (8 divergences in 2,000 draws on two groups
+        # of five campaigns, tests/test_model_options.py)
+        g_eff = pm.Normal("group_effect", 0.0, group_sd, dims="group")
         cg = np.maximum(d.campaign_group, 0)
         centre = centre + pt.where(d.campaign_group >= 0, g_eff[cg], 0.0)
-    return centre, lift_sd
+        return centre, lift_spread(lift_sd, group_sd, d.campaign_group, pt.sqrt)
+    return centre, pt.ones(C) * lift_sd
+
 
 
 # ---------------------------------------------------------------------------------------------
@@ -470,12 +483,14 @@ def campaign_draws(design, curves: CurveSet, s: ModelSettings, post: dict, rng: 
     corrected = not d.flags.no_placebo_anywhere
     lm = np.zeros(D) if single else post["lift_mean"]
     lsd = np.full(D, float(s.lift_mean_scale)) if single else post["lift_sd"]
+    spread = (lift_spread(lsd, post["group_sd"], d.campaign_group) if "group_sd" in post
+              else np.repeat(lsd[:, None], C, axis=1))  # (D, C)
     centre = np.repeat(lm[:, None], C, axis=1)
     if "group_effect" in post:
         cg = np.maximum(d.campaign_group, 0)
         centre = centre + np.where(d.campaign_group >= 0, post["group_effect"][:, cg], 0.0)
     sr = post["residual_sd"] if corrected else np.zeros(D)
-    tau = np.sqrt(lsd**2 + sr**2)
+    tau = np.sqrt(spread**2 + sr[:, None] ** 2)  # (D, C)
     ob = post.get("outcome_bias") if s.outcome_bias else None
     terms = campaign_terms(d, curves)
     tb = _tables(curves)
@@ -495,7 +510,7 @@ def campaign_draws(design, curves: CurveSet, s: ModelSettings, post: dict, rng: 
             off = np.where(terms.is_target, centre[sl][:, terms.campaign], 0.0)
             if ob is not None:
                 off = off + ob[sl][:, terms.outcome]
-            sd = np.where(terms.is_target, tau[sl, None], sr[sl, None])
+            sd = np.where(terms.is_target, tau[sl][:, terms.campaign], sr[sl, None])
             m, half, f = _outer_nodes(np.ascontiguousarray(mu[sl], dtype=float), np.ascontiguousarray(sdb[sl], dtype=float),
                                       np.ascontiguousarray(off, dtype=float), np.ascontiguousarray(sd, dtype=float),
                                       pairs, terms.start, tb, xo, lwo, xi, lwi)
@@ -505,7 +520,7 @@ def campaign_draws(design, curves: CurveSet, s: ModelSettings, post: dict, rng: 
     tp = d.target_pair()
     o_t = ob[:, d.pair_outcome[tp]] if ob is not None else 0.0
     eta = bias + o_t
-    excess = _excess_draws(curves, tp, eta, centre, np.repeat(tau[:, None], C, axis=1), rng)
+    excess = _excess_draws(curves, tp, eta, centre, tau, rng)
     out = dict(post)
     out["bias"] = bias
     out["target_excess"] = excess

@@ -24,10 +24,20 @@ import numba
 import numpy as np
 from scipy.special import expit, logit
 
-__all__ = ["complete_draws", "split_lift", "BASELINE_PRIOR_SD", "target_cells"]
+__all__ = ["complete_draws", "split_lift", "lift_spread", "BASELINE_PRIOR_SD", "target_cells"]
 
 #: Prior sd (log odds) of a cell's baseline around its pair's pooled unseen rate.
 BASELINE_PRIOR_SD = 2.0
+
+
+def lift_spread(lift_sd, group_sd, campaign_group, sqrt=np.sqrt):
+    """Each campaign's lift spread around its centre: ``lift_sd``, and for a campaign without a group
+    (``campaign_group < 0``) also its unknown group effect, ``sqrt(lift_sd^2 + group_sd^2)``.
+    Broadcasts: scalars or (D,) draws give (C,) or (D, C)."""
+    ungrouped = (np.asarray(campaign_group) < 0).astype(float)
+    ls = lift_sd[..., None] if getattr(lift_sd, "ndim", 0) else lift_sd
+    gs = group_sd[..., None] if getattr(group_sd, "ndim", 0) else group_sd
+    return sqrt(ls**2 + ungrouped * gs**2)
 
 
 def split_lift(x, centre, lift_sd, residual_sd, z):
@@ -157,12 +167,15 @@ def complete_draws(design, cells, curves, core: dict, rng: np.random.Generator) 
     else:
         centre = np.repeat(core["lift_mean"][:, None], C, axis=1)
         lift_sd = core["lift_sd"]
+        if "group_sd" in core:  # an ungrouped campaign's unknown group effect widens its lift's prior
+            lift_sd = lift_spread(lift_sd, core["group_sd"], design.campaign_group)
         if "group_effect" in core:
             g = design.campaign_group
             centre = centre + np.where(g >= 0, core["group_effect"][:, np.maximum(g, 0)], 0.0)
     if corrected:
         sr = core["residual_sd"]
-        lift = split_lift(x, centre, lift_sd[:, None], sr[:, None], rng.standard_normal((D, C)))
+        lift = split_lift(x, centre, lift_sd if lift_sd.ndim == 2 else lift_sd[:, None], sr[:, None],
+                          rng.standard_normal((D, C)))
         eta = core["bias"][:, design.pair_campaign]
         if "outcome_bias" in core:
             eta = eta + core["outcome_bias"][:, design.pair_outcome]

@@ -28,10 +28,11 @@ from liftpool.models.conditional import build_curves, cell_tables
 from liftpool.models.design import CampaignFlags, Design, make_design
 from liftpool.models.diagnostics import Diagnostics, check_convergence
 from liftpool.models.errors import FitError, LiftpoolWarning
+from liftpool.models.estimands import estimand_draws, summarize
 from liftpool.models.gaussian import gaussian_posterior
 from liftpool.models.quick import quick_fit, quick_relative
 from liftpool.models.settings import ModelSettings, default_cores
-from liftpool.models.summary import NEW_CAMPAIGN, PORTFOLIO, prior_lift_quantiles, summarize_draws
+from liftpool.models.summary import NEW_CAMPAIGN, PORTFOLIO, prior_lift_quantiles
 
 __all__ = ["FitResult", "fit_counts", "load_fit", "package_versions", "choose_init", "free_parameters", "AUTO_ADVI_FROM"]
 
@@ -74,6 +75,9 @@ class FitResult:
         Timings, backend, package versions, counts size, predictive-check summaries.
     predictive : DataFrame or None
         The posterior predictive check by (campaign, outcome, arm) (full fits).
+    estimands : Dataset
+        Draws of every reported quantity by unit (campaigns and pooled rows), in natural units
+        (:mod:`liftpool.models.estimands`); ``summary`` is its summary at the fit's level.
     """
 
     idata: az.InferenceData
@@ -84,6 +88,20 @@ class FitResult:
     mode: str
     info: dict = field(default_factory=dict)
     predictive: pd.DataFrame | None = None
+    estimands: xr.Dataset | None = None
+
+    def __post_init__(self) -> None:
+        if self.estimands is None:  # a fit saved before the estimands were stored with it
+            self.estimands = estimand_draws(self.idata.posterior, self.corrected, self.settings.seed)
+
+    @property
+    def level(self) -> float:
+        """The interval level the fit was summarised at (the report's default)."""
+        return self.settings.level
+
+    def summarize(self, level: float | None = None) -> pd.DataFrame:
+        """The tidy summary of every reported quantity at ``level`` (the fit's by default)."""
+        return summarize(self.estimands, level or self.settings.level)
 
     @property
     def converged(self) -> bool:
@@ -112,6 +130,8 @@ class FitResult:
         with atomic_folder(folder) as tmp:
             self.idata.to_netcdf(str(tmp / "posterior.nc"), engine="h5netcdf")
             self.summary.to_csv(tmp / "summary.csv", index=False)
+            enc = {v: {"zlib": True, "complevel": 4} for v in self.estimands.data_vars}
+            self.estimands.to_netcdf(tmp / "estimands.nc", engine="h5netcdf", encoding=enc)
             if self.predictive is not None:
                 self.predictive.to_csv(tmp / "predictive_check.csv", index=False)
             write_json({"mode": self.mode, "settings": self.settings.to_dict(),
@@ -186,12 +206,17 @@ def load_fit(folder: str | os.PathLike) -> FitResult:
     meta = json.loads(meta_path.read_text())
     idata = az.from_netcdf(str(folder / "posterior.nc"), engine="h5netcdf")
     summary = pd.read_csv(folder / "summary.csv", keep_default_na=False, na_values=[""])
+    est_path = folder / "estimands.nc"
+    estimands = None
+    if est_path.is_file():
+        with xr.open_dataset(est_path, engine="h5netcdf") as ds:
+            estimands = ds.load()
     pc = folder / "predictive_check.csv"
     predictive = pd.read_csv(pc, keep_default_na=False, na_values=[""]) if pc.is_file() else None
     flags_d = {k: v for k, v in meta["flags"].items() if k != "messages"}
     return FitResult(idata=idata, summary=summary, diagnostics=Diagnostics.from_dict(meta["diagnostics"]),
                      flags=CampaignFlags(**flags_d), settings=ModelSettings.from_mapping(meta["settings"]),
-                     mode=meta["mode"], info=meta.get("info", {}), predictive=predictive)
+                     mode=meta["mode"], info=meta.get("info", {}), predictive=predictive, estimands=estimands)
 
 
 @contextlib.contextmanager
@@ -284,17 +309,6 @@ def _naive_draws(d: Design, n_draws: int, rng: np.random.Generator) -> dict[str,
         pu = rng.beta(1 + xu, 1 + nu - xu, n_draws)
         out[camp] = pe / pu - 1
     return out
-
-
-def _posterior_quantities(d: Design, post: xr.Dataset, corrected: bool) -> dict[str, dict[str, np.ndarray]]:
-    q: dict[str, dict[str, np.ndarray]] = {}
-    names = ["lift_uncorrected", "lift_logodds"] + (["lift", "incremental_conversions", "bias_target"]
-                                                    if corrected else [])
-    for name in names:
-        da = post[name]
-        key = "bias" if name == "bias_target" else name
-        q[key] = {c: da.sel(campaign=c).values.ravel() for c in d.campaigns}
-    return q
 
 
 def _run_sampler(model, s: ModelSettings, info: dict, say, progressbar: bool, init: str, **extra) -> az.InferenceData:
@@ -675,6 +689,7 @@ def fit_counts(
                                                          ("bias_sign", s.bias_sign != "any")) if on]
             idata = None
         else:
+            s = s.for_portfolio(d.n_campaigns)  # the rate used is stored with the fit's settings
             idata, diag, model, core = _sample_conditional(d, curves, qcore, s, info, say, progressbar, t0, rng)
     if core is not None:
         chains, draws = core["target_excess"].shape[:2]
@@ -695,36 +710,19 @@ def fit_counts(
                                             "inside_interval": float(predictive["inside"].mean()),
                                             "level": s.level}
         info["prior_predictive"] = prior_predictive_lift_numpy(d, s)
-    post = idata.posterior
-    rng_new = np.random.default_rng(s.seed + 2)
-    if "lift_mean" in post:
-        ln = post["lift_mean"].values + post["lift_sd"].values * rng_new.standard_normal(post["lift_mean"].shape)
-        if "group_sd" in post:
-            ln = ln + post["group_sd"].values * rng_new.standard_normal(post["lift_mean"].shape)
-        new_lift = np.expm1(ln).ravel()
-    else:  # a single campaign: no population to predict from
-        new_lift = None
     _add_data(idata, d, curves)
     info["counts_sha256"] = counts_hash(d.counts)
     post = idata.posterior
-    per = _posterior_quantities(d, post, corrected)
     n_draws = post.sizes["chain"] * post.sizes["draw"]
     naive = _naive_draws(d, n_draws, rng)
     if naive:
-        per["lift_naive"] = naive
         arr = np.full((post.sizes["chain"], post.sizes["draw"], d.n_campaigns), np.nan)
         for i, c in enumerate(d.campaigns):
             if c in naive:
                 arr[:, :, i] = naive[c].reshape(post.sizes["chain"], post.sizes["draw"])
         idata.posterior["lift_naive"] = (("chain", "draw", "campaign"), arr)
-    pooled: dict[str, dict[str, np.ndarray]] = {}
-    if corrected:
-        inc = post["incremental_conversions"].values.sum(axis=-1).ravel()
-        cf = post["counterfactual_conversions"].values.sum(axis=-1).ravel()
-        pooled[PORTFOLIO] = {"lift": inc / cf, "incremental_conversions": inc}
-        if new_lift is not None and d.n_campaigns > 1:
-            pooled[NEW_CAMPAIGN] = {"lift": new_lift}
-    summary = summarize_draws(per, pooled, s.level)
+    est = estimand_draws(idata.posterior, corrected, s.seed)
+    summary = summarize(est, s.level)
     info["seconds"] = round(time.perf_counter() - t0, 2)
     if not quick and not diag.converged:
         warnings.warn("the fit did not converge: " + "; ".join(c.name for c in diag.failures)
@@ -732,4 +730,4 @@ def fit_counts(
     idata.posterior.attrs.update({"liftpool_mode": "quick" if quick else "full", "seed": s.seed,
                                   "corrected": int(corrected)})
     return FitResult(idata=idata, summary=summary, diagnostics=diag, flags=d.flags, settings=s,
-                     mode="quick" if quick else "full", info=info, predictive=predictive)
+                     mode="quick" if quick else "full", info=info, predictive=predictive, estimands=est)

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import os
-from dataclasses import dataclass, field, fields
+from dataclasses import dataclass, field, fields, replace
 from typing import Any
 
 from liftpool.data_prep.errors import ConfigError
@@ -18,6 +18,10 @@ LIKELIHOODS = ("conditional", "binomial")
 BIAS_SIGNS = ("any", "nonnegative")
 #: NUTS target acceptance rate by likelihood when none is given (docs/performance.md).
 DEFAULT_ACCEPT = {"conditional": 0.95, "binomial": 0.99}
+#: ... and for the conditional model on a portfolio of at most this many campaigns, 0.99: there the
+#: spreads are mostly prior, and their log scale is stiff on one side (validation/shapes.py: one
+#: divergence in 8,000 draws in 3 of 6 such fits at 0.95, none at 0.99; docs/model.md).
+SMALL_PORTFOLIO, SMALL_PORTFOLIO_ACCEPT = 3, 0.99
 
 
 def default_cores() -> int:
@@ -104,6 +108,14 @@ class ModelSettings(OptionsMixin):
         if self.target_accept is not None:
             return float(self.target_accept)
         return DEFAULT_ACCEPT[self.likelihood]
+
+    def for_portfolio(self, n_campaigns: int) -> ModelSettings:
+        """These settings with the target acceptance rate fixed for a portfolio of ``n_campaigns``
+        (:data:`SMALL_PORTFOLIO_ACCEPT` for a small one when none was given)."""
+        if self.target_accept is not None:
+            return self
+        small = self.likelihood == "conditional" and n_campaigns <= SMALL_PORTFOLIO
+        return replace(self, target_accept=SMALL_PORTFOLIO_ACCEPT if small else DEFAULT_ACCEPT[self.likelihood])
 
     def __post_init__(self) -> None:
         if self.extra:

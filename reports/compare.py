@@ -13,7 +13,10 @@ __all__ = ["compare_fits"]
 
 def compare_fits(a: FitResult, b: FitResult, name_a: str, name_b: str) -> tuple[pd.DataFrame, bytes]:
     """Per campaign: the bias and the lift interval in each fit, and the change."""
-    import matplotlib.pyplot as plt
+    import matplotlib as mpl
+    from matplotlib.ticker import FuncFormatter
+
+    from liftpool.reports.figures import new_figure
 
     qa = "lift" if a.corrected else "lift_uncorrected"
     qb = "lift" if b.corrected else "lift_uncorrected"
@@ -41,8 +44,8 @@ def compare_fits(a: FitResult, b: FitResult, name_a: str, name_b: str) -> tuple[
             d = f.idata.posterior["bias_mean"].values.ravel()
             pooled[f"bias median, log odds ({tag})"] = float(np.median(d))
     table = pd.concat([table, pd.DataFrame([pooled])], ignore_index=True)
-    with plt.rc_context(STYLE):
-        fig, (ax1, ax2) = plt.subplots(1, 2, figsize=(9, 0.45 * len(camps) + 1.4), sharey=True,
+    with mpl.rc_context(STYLE):
+        fig, (ax1, ax2) = new_figure((9, 0.45 * len(camps) + 1.4), nrows=1, ncols=2, sharey=True,
                                        gridspec_kw={"width_ratios": [3, 2]})
         y = np.arange(len(camps))[::-1]
         for tag, off, color, m in ((name_a, 0.15, "0.55", "s"), (name_b, -0.15, "black", "o")):
@@ -54,7 +57,7 @@ def compare_fits(a: FitResult, b: FitResult, name_a: str, name_b: str) -> tuple[
         ax1.axvline(0, color="black", linewidth=0.8)
         ax1.set_yticks(y, camps)
         ax1.set_xlabel("lift (median and interval)")
-        ax1.xaxis.set_major_formatter(plt.FuncFormatter(lambda v, _p: f"{v:+.0%}"))
+        ax1.xaxis.set_major_formatter(FuncFormatter(lambda v, _p: f"{v:+.0%}"))
         ax1.legend(fontsize=8, loc="lower right")
         ax2.set_xlabel("bias on the target (log odds)")
         ax1.set_title(f"How the estimates moved: fit {name_a} to fit {name_b}", loc="left")

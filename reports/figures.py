@@ -8,15 +8,15 @@ from __future__ import annotations
 
 import io
 
-import matplotlib
+import matplotlib as mpl
+import numpy as np
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.figure import Figure
 
-matplotlib.use("Agg")
-import matplotlib.pyplot as plt  # noqa: E402
-import numpy as np  # noqa: E402
+from liftpool.reports.money import fmt_prob
+from liftpool.reports.tables import KIND_OF_ROW, ReportTables
 
-from liftpool.reports.tables import ReportTables, interval  # noqa: E402
-
-__all__ = ["make_figures"]
+__all__ = ["make_figures", "new_figure", "png_bytes"]
 
 STYLE = {"font.size": 9, "axes.edgecolor": "black", "axes.grid": True, "grid.color": "0.88",
          "grid.linewidth": 0.6, "axes.spines.top": False, "axes.spines.right": False, "savefig.dpi": 130,
@@ -25,41 +25,61 @@ MARK = {"naive": ("D", "0.65", "naive (served vs not)"), "uncorrected": ("s", "0
         "corrected": ("o", "black", "bias-corrected")}
 
 
+def new_figure(figsize, **subplots):
+    """A figure and its axes, drawn by the Agg canvas directly: pyplot's global state and the user's
+    backend (a notebook's, say) are left alone. ``subplots`` go to :meth:`Figure.subplots`."""
+    fig = Figure(figsize=figsize)
+    FigureCanvasAgg(fig)
+    return fig, fig.subplots(**subplots)
+
+
+def _subplots(figsize):
+    return new_figure(figsize)
+
+
+def png_bytes(fig) -> bytes:
+    """The figure as PNG bytes."""
+    return _png(fig)
+
+
 def _png(fig) -> bytes:
     buf = io.BytesIO()
     fig.savefig(buf, format="png", bbox_inches="tight")
-    plt.close(fig)
     return buf.getvalue()
 
 
+def _plain(text: str) -> str:
+    """A user's string as literal text in a figure: no mathtext (``$...$``) interpretation."""
+    return str(text).replace("$", r"\$")
+
+
+def _row_label(r: dict) -> str:
+    return _plain(r["campaign"]) if r["row"] == "campaign" else KIND_OF_ROW[r["row"]]
+
+
 def _lift_figure(t: ReportTables) -> bytes:
-    camps = [c for c in t.campaigns["campaign"]]
-    rows = camps + (["(portfolio)"] if "(portfolio)" in t.draws else [])
-    fig, ax = plt.subplots(figsize=(7.2, 0.42 * len(rows) + 1.3))
-    y = np.arange(len(rows))[::-1]
+    res = [r for r in t.results.to_dict(orient="records") if r["row"] != "new campaign"]
+    fig, ax = _subplots((7.2, 0.42 * len(res) + 1.3))
+    y = np.arange(len(res))[::-1]
     xmax = 0.0
     for j, key in enumerate(("naive", "uncorrected", "corrected")):
         m, color, label = MARK[key]
-        qname = {"naive": None, "uncorrected": "lift_uncorrected", "corrected": "lift"}[key]
-        for yi, c in zip(y, rows, strict=True):
+        q = {"naive": "lift_naive", "uncorrected": "lift_uncorrected", "corrected": "lift"}[key]
+        first = True
+        for yi, r in zip(y, res, strict=True):
             off = (1 - j) * 0.22
-            if key == "naive":
-                r = t.campaigns.set_index("campaign")
-                v = r["naive lift, median (%)"].get(c, np.nan) / 100 if c in r.index else np.nan
-                if np.isfinite(v):
-                    ax.plot([min(v, 1e9)], [yi + off], m, color=color, markersize=5,
-                            label=label if yi == y[0] else None)
-                    xmax = max(xmax, v)
+            med = r.get(q, np.nan)
+            if not np.isfinite(med):
                 continue
-            d = t.draws.get(c, {}).get(qname)
-            if d is None:
-                continue
-            lo, hi = interval(d, t.level)
-            ax.plot([lo, hi], [yi + off] * 2, "-", color=color, linewidth=1.6)
-            ax.plot([np.median(d)], [yi + off], m, color=color, markersize=5, label=label if yi == y[0] else None)
-            xmax = max(xmax, hi)
+            if key != "naive":
+                lo, hi = r[q + "_lower"], r[q + "_upper"]
+                ax.plot([lo, hi], [yi + off] * 2, "-", color=color, linewidth=1.6)
+                xmax = max(xmax, hi)
+            ax.plot([med], [yi + off], m, color=color, markersize=5, label=label if first else None)
+            first = False
+            xmax = max(xmax, med)
     ax.axvline(0, color="black", linewidth=0.8)
-    ax.set_yticks(y, rows)
+    ax.set_yticks(y, [_row_label(r) for r in res])
     ax.set_xscale("symlog", linthresh=1.0)
     ticks = [t_ for t_ in (-0.5, 0, 0.25, 0.5, 1, 2, 5, 10, 20) if t_ <= max(1.0, xmax * 1.2)]
     ax.set_xticks(ticks, [f"{v:+.0%}" for v in ticks])
@@ -74,7 +94,7 @@ def _placebo_figure(t: ReportTables) -> bytes | None:
     if p.empty:
         return None
     L = int(round(t.level * 100))
-    fig, ax = plt.subplots(figsize=(7.2, 0.36 * len(p) + 1.2))
+    fig, ax = _subplots((7.2, 0.36 * len(p) + 1.2))
     y = np.arange(len(p))[::-1]
     for (col, lo, hi), m, color, off, label in (
             (("before correction, median (log odds)", f"before, {L}% lower", f"before, {L}% upper"), "s", "0.45", 0.15,
@@ -84,7 +104,7 @@ def _placebo_figure(t: ReportTables) -> bytes | None:
         ax.hlines(y + off, p[lo], p[hi], color=color, linewidth=1.6)
         ax.plot(p[col], y + off, m, color=color, markersize=5, label=label)
     ax.axvline(0, color="black", linewidth=0.8, linestyle="--")
-    ax.set_yticks(y, [f"{c} | {o}" for c, o in zip(p["campaign"], p["placebo outcome"], strict=True)])
+    ax.set_yticks(y, [_plain(f"{c} | {o}") for c, o in zip(p["campaign"], p["placebo outcome"], strict=True)])
     ax.set_xlabel(f"seen-vs-unseen effect on the placebo outcome, log odds ({L}% interval); 0 = no bias")
     ax.set_title("Placebo check: bias before and after the correction")
     ax.legend(loc="best", fontsize=8)
@@ -93,7 +113,7 @@ def _placebo_figure(t: ReportTables) -> bytes | None:
 
 def _shrinkage_figure(t: ReportTables) -> bytes:
     s = t.shrinkage
-    fig, ax = plt.subplots(figsize=(5.6, 4.4))
+    fig, ax = _subplots((5.6, 4.4))
     size = 20 + 300 * np.sqrt(s["target conversions"] / max(1, s["target conversions"].max()))
     ax.errorbar(s["alone (log odds)"], s["pooled, median (log odds)"],
                 yerr=[s["pooled, median (log odds)"] - s["pooled lower"], s["pooled upper"] - s["pooled, median (log odds)"]],
@@ -101,7 +121,7 @@ def _shrinkage_figure(t: ReportTables) -> bytes:
     ax.scatter(s["alone (log odds)"], s["pooled, median (log odds)"], s=size, facecolor="white", edgecolor="black",
                zorder=3)
     for name, xa, ya in zip(s["campaign"], s["alone (log odds)"], s["pooled, median (log odds)"], strict=True):
-        ax.annotate(name, (xa, ya), fontsize=7, xytext=(4, 4), textcoords="offset points")
+        ax.annotate(_plain(name), (xa, ya), fontsize=7, xytext=(4, 4), textcoords="offset points")
     lim = [min(s["alone (log odds)"].min(), s["pooled lower"].min()) - 0.05,
            max(s["alone (log odds)"].max(), s["pooled upper"].max()) + 0.05]
     ax.plot(lim, lim, ":", color="black", linewidth=1, label="no pooling (pooled = alone)")
@@ -114,22 +134,21 @@ def _shrinkage_figure(t: ReportTables) -> bytes:
 
 def _steps_figure(t: ReportTables) -> bytes:
     c = t.campaigns
-    cols = [("naive lift, median (%)", "naive"), ("uncorrected lift, median (%)", "uncorrected"),
-            ("lift, median (%)", "bias-corrected")]
+    cols = [("lift_naive", "naive"), ("lift_uncorrected", "uncorrected"), ("lift", "bias-corrected")]
     cols = [(k, lab) for k, lab in cols if k in c.columns and c[k].notna().any()]
-    fig, ax = plt.subplots(figsize=(6.4, 4.2))
+    fig, ax = _subplots((6.4, 4.2))
     x = np.arange(len(cols))
     styles = ["-", "--", "-.", ":"]
     for i, name in enumerate(c["campaign"]):
-        vals = [c.loc[i, k] / 100 for k, _ in cols]
+        vals = [c.loc[i, k] for k, _ in cols]
         ax.plot(x, vals, styles[i % 4], marker="o", color="black" if i % 2 == 0 else "0.45", linewidth=1,
                 markersize=4)
-        ax.annotate(str(name), (x[-1], vals[-1]), fontsize=7, xytext=(5, 0), textcoords="offset points",
+        ax.annotate(_plain(name), (x[-1], vals[-1]), fontsize=7, xytext=(5, 0), textcoords="offset points",
                     va="center")
     ax.set_xticks(x, [lab for _, lab in cols])
     ax.set_yscale("symlog", linthresh=1.0)
     ax.axhline(0, color="black", linewidth=0.8)
-    ticks = [v for v in (0, 0.1, 0.25, 0.5, 1, 2, 5) if v <= max(1.0, float(c[[k for k, _ in cols]].max().max()) / 100 * 1.2)]
+    ticks = [v for v in (0, 0.1, 0.25, 0.5, 1, 2, 5) if v <= max(1.0, float(c[[k for k, _ in cols]].max().max()) * 1.2)]
     ax.set_yticks(ticks, [f"{v:+.0%}" for v in ticks])
     ax.set_ylabel("lift (median)")
     ax.set_title("From naive to bias-corrected, per campaign")
@@ -138,31 +157,30 @@ def _steps_figure(t: ReportTables) -> bytes:
 
 
 def _roas_figure(t: ReportTables) -> bytes | None:
-    have = [c for c in t.campaigns["campaign"] if "roas" in t.draws.get(c, {})]
-    if not have:
+    if "return_on_ad_spend" not in t.results.columns:
         return None
-    rows = have + (["(portfolio)"] if "roas" in t.draws.get("(portfolio)", {}) else [])
-    fig, ax = plt.subplots(figsize=(7.2, 0.42 * len(rows) + 1.3))
-    y = np.arange(len(rows))[::-1]
-    for yi, c in zip(y, rows, strict=True):
-        d = t.draws[c]["roas"]
-        lo, hi = interval(d, t.level)
-        lo50, hi50 = interval(d, 0.5)
+    res = [r for r in t.results.to_dict(orient="records") if np.isfinite(r.get("return_on_ad_spend", np.nan))]
+    if not res:
+        return None
+    fig, ax = _subplots((7.2, 0.42 * len(res) + 1.3))
+    y = np.arange(len(res))[::-1]
+    for yi, r in zip(y, res, strict=True):
+        lo, hi = r["return_on_ad_spend_lower"], r["return_on_ad_spend_upper"]
         ax.hlines(yi, lo, hi, color="0.5", linewidth=1.4)
-        ax.hlines(yi, lo50, hi50, color="black", linewidth=4)
-        ax.plot([np.median(d)], [yi], "o", color="white", markeredgecolor="black", markersize=5, zorder=3)
-        ax.annotate(f"P(return > 1) = {np.mean(d > 1):.0%}", (hi, yi), fontsize=7, xytext=(5, 0),
+        ax.plot([r["return_on_ad_spend"]], [yi], "o", color="white", markeredgecolor="black", markersize=5, zorder=3)
+        ax.annotate(f"chance it paid for itself {fmt_prob(r['p_paid_for_itself'])}", (hi, yi), fontsize=7, xytext=(5, 0),
                     textcoords="offset points", va="center")
     ax.axvline(1.0, color="black", linewidth=1, linestyle="--")
-    ax.set_yticks(y, rows)
-    ax.set_xlabel(f"return on ad spend: incremental revenue / spend (thick 50%, thin {t.level:.0%}); 1 = break-even")
+    ax.set_yticks(y, [_row_label(r) for r in res])
+    ax.set_xlabel(f"return on ad spend: incremental revenue / spend (median and {t.level:.0%} interval); "
+                  "1 = break-even")
     ax.set_title("Did it pay for itself? Posterior of return on ad spend")
     return _png(fig)
 
 
 def make_figures(t: ReportTables) -> dict[str, bytes]:
     """All figures as PNG bytes, by file name."""
-    with plt.rc_context(STYLE):
+    with mpl.rc_context(STYLE):
         figs = {"lift_by_campaign.png": _lift_figure(t),
                 "placebo_check.png": _placebo_figure(t),
                 "shrinkage.png": _shrinkage_figure(t),

@@ -12,7 +12,7 @@ import numpy as np
 import pandas as pd
 
 from liftpool.reports.money import fmt_int, fmt_money, fmt_pct, fmt_prob, fmt_ratio
-from liftpool.reports.tables import ReportTables
+from liftpool.reports.tables import KIND_OF_ROW, ReportTables
 
 __all__ = ["render_html", "CAUTIONS"]
 
@@ -71,36 +71,47 @@ def _iv(lo, hi, f) -> str:
     return f"{esc(f(lo))}\u00a0to {esc(f(hi))}"
 
 
+def _name(r: dict) -> str:
+    """A row's first cell: the campaign, or what a pooled row is (escaped)."""
+    if r["row"] == "campaign":
+        return esc(r["campaign"])
+    return f"<i>{esc(KIND_OF_ROW[r['row']])}</i>"
+
+
 def _lift_table(t: ReportTables) -> str:
     L = int(round(t.level * 100))
-    c = t.campaigns
-    corrected = "lift, median (%)" in c.columns
-    head = ["campaign", "users seen", "users unseen", "non-viewable share", "naive lift", "uncorrected lift"]
-    if corrected:
+    rows_in = t.results.to_dict(orient="records")
+    naive = "lift_naive" in t.results.columns
+    head = ["campaign", "users seen", "users unseen", "non-viewable share"] + (["naive lift"] if naive else [])
+    head += ["uncorrected lift"]
+    if t.corrected:
         head += ["bias-corrected lift (median)", "50% interval", f"{L}% interval", "incremental conversions",
                  f"{L}% interval", "P(lift > 0)"]
     else:
         head += [f"{L}% interval"]
-    rows = []
-    for r in c.to_dict(orient="records"):
-        nv = r["non-viewable share of measured impressions (%)"]
-        cells = [f'<td class="l">{esc(r["campaign"])}</td>', f"<td>{fmt_int(r['users seen'])}</td>",
-                 f"<td>{fmt_int(r['users unseen'])}</td>",
-                 f"<td>{fmt_pct(nv / 100, signed=False) if np.isfinite(nv) else 'n/a'}</td>",
-                 f"<td>{fmt_pct(r['naive lift, median (%)'] / 100) if np.isfinite(r['naive lift, median (%)']) else 'n/a'}</td>",
-                 f"<td>{fmt_pct(r['uncorrected lift, median (%)'] / 100)}</td>"]
-        if corrected:
-            def p(k, r=r):
-                return r[k] / 100
 
-            cells += [f"<td><b>{fmt_pct(p('lift, median (%)'))}</b></td>",
-                      f"<td>{_iv(p('lift, 50% lower (%)'), p('lift, 50% upper (%)'), fmt_pct)}</td>",
-                      f"<td>{_iv(p(f'lift, {L}% lower (%)'), p(f'lift, {L}% upper (%)'), fmt_pct)}</td>",
-                      f"<td>{fmt_int(r['incremental conversions, median'])}</td>",
-                      f"<td>{_iv(r[f'incremental conversions, {L}% lower'], r[f'incremental conversions, {L}% upper'], fmt_int)}</td>",
-                      f"<td>{fmt_prob(r['P(lift > 0)'])}</td>"]
+    def v(r, k):
+        return r.get(k, np.nan)
+
+    rows = []
+    for r in rows_in:
+        share = v(r, "nonviewable_share")
+        cells = [f'<td class="l">{_name(r)}</td>', f"<td>{fmt_int(v(r, 'users_seen'))}</td>",
+                 f"<td>{fmt_int(v(r, 'users_unseen'))}</td>",
+                 f"<td>{fmt_pct(share, signed=False) if np.isfinite(share) else 'n/a'}</td>"]
+        if naive:
+            cells.append(f"<td>{fmt_pct(v(r, 'lift_naive'))}</td>")
+        cells.append(f"<td>{fmt_pct(v(r, 'lift_uncorrected'))}</td>")
+        if t.corrected:
+            cells += [f"<td><b>{fmt_pct(v(r, 'lift'))}</b></td>",
+                      f"<td>{_iv(v(r, 'lift_lower50'), v(r, 'lift_upper50'), fmt_pct)}</td>",
+                      f"<td>{_iv(v(r, 'lift_lower'), v(r, 'lift_upper'), fmt_pct)}</td>",
+                      f"<td>{fmt_int(v(r, 'incremental_conversions'))}</td>",
+                      f"<td>{_iv(v(r, 'incremental_conversions_lower'), v(r, 'incremental_conversions_upper'), fmt_int)}"
+                      "</td>",
+                      f"<td>{fmt_prob(v(r, 'p_lift_positive'))}</td>"]
         else:
-            cells += [f"<td>{_iv(r[f'uncorrected lift, {L}% lower (%)'] / 100, r[f'uncorrected lift, {L}% upper (%)'] / 100, fmt_pct)}</td>"]
+            cells.append(f"<td>{_iv(v(r, 'lift_uncorrected_lower'), v(r, 'lift_uncorrected_upper'), fmt_pct)}</td>")
         rows.append("<tr>" + "".join(cells) + "</tr>")
     th = "".join(f'<th class="l">{esc(h)}</th>' if i == 0 else f"<th>{esc(h)}</th>" for i, h in enumerate(head))
     return f"<table><thead><tr>{th}</tr></thead><tbody>{''.join(rows)}</tbody></table>"
@@ -109,32 +120,43 @@ def _lift_table(t: ReportTables) -> str:
 def _money_table(t: ReportTables) -> str:
     L = int(round(t.level * 100))
     cur = t.currency
-    c = t.campaigns
-    if f"spend ({cur})" not in c.columns:
+    if not t.spend_given:
         return '<p class="muted">No spend file was given: costs and returns are not shown.</p>'
-    has_value = "return on ad spend, median (x)" in c.columns
+    if "spend" not in t.results.columns:
+        return ('<p class="muted">A spend file was given, but costs and returns need the bias-corrected estimate, '
+                "which needs placebo outcomes; none was given.</p>")
+    has_value = "return_on_ad_spend" in t.results.columns
     head = ["campaign", f"spend ({cur})", f"cost per incremental conversion ({cur})", f"{L}% interval"]
     if has_value:
-        head += [f"incremental revenue ({cur})", f"{L}% interval", "return on ad spend", f"{L}% interval", "P(return > 1)"]
+        head += [f"incremental revenue ({cur})", f"{L}% interval", "return on ad spend", f"{L}% interval",
+                 "P(paid for itself)"]
     rows = []
-    for r in c.to_dict(orient="records"):
-        if not np.isfinite(r.get(f"spend ({cur})", np.nan)):
+    missing = []
+    for r in t.results.to_dict(orient="records"):
+        if not np.isfinite(r.get("spend", np.nan)):
+            if r["row"] == "campaign":
+                missing.append(r["campaign"])
             continue
         m = lambda x: fmt_money(x, cur)  # noqa: E731
-        cells = [f'<td class="l">{esc(r["campaign"])}</td>', f"<td>{m(r[f'spend ({cur})'])}</td>",
-                 f"<td><b>{m(r[f'cost per incremental conversion, median ({cur})'])}</b></td>",
-                 f"<td>{_iv(r[f'cost per incremental conversion, {L}% lower ({cur})'], r[f'cost per incremental conversion, {L}% upper ({cur})'], m)}</td>"]
-        if has_value and np.isfinite(r.get("return on ad spend, median (x)", np.nan)):
-            cells += [f"<td>{m(r[f'incremental revenue, median ({cur})'])}</td>",
-                      f"<td>{_iv(r[f'incremental revenue, {L}% lower ({cur})'], r[f'incremental revenue, {L}% upper ({cur})'], m)}</td>",
-                      f"<td><b>{fmt_ratio(r['return on ad spend, median (x)'])}</b></td>",
-                      f"<td>{_iv(r[f'return on ad spend, {L}% lower (x)'], r[f'return on ad spend, {L}% upper (x)'], fmt_ratio)}</td>",
-                      f"<td>{fmt_prob(r['P(return > 1)'])}</td>"]
+        cells = [f'<td class="l">{_name(r)}</td>', f"<td>{m(r['spend'])}</td>",
+                 f"<td><b>{m(r['cost_per_incremental_conversion'])}</b></td>",
+                 f"<td>{_iv(r['cost_per_incremental_conversion_lower'], r['cost_per_incremental_conversion_upper'], m)}"
+                 "</td>"]
+        if has_value and np.isfinite(r.get("return_on_ad_spend", np.nan)):
+            cells += [f"<td>{m(r['incremental_revenue'])}</td>",
+                      f"<td>{_iv(r['incremental_revenue_lower'], r['incremental_revenue_upper'], m)}</td>",
+                      f"<td><b>{fmt_ratio(r['return_on_ad_spend'])}</b></td>",
+                      f"<td>{_iv(r['return_on_ad_spend_lower'], r['return_on_ad_spend_upper'], fmt_ratio)}</td>",
+                      f"<td>{fmt_prob(r['p_paid_for_itself'])}</td>"]
         elif has_value:
             cells += ["<td>n/a</td>"] * 5
         rows.append("<tr>" + "".join(cells) + "</tr>")
     th = "".join(f'<th class="l">{esc(h)}</th>' if i == 0 else f"<th>{esc(h)}</th>" for i, h in enumerate(head))
-    return f"<table><thead><tr>{th}</tr></thead><tbody>{''.join(rows)}</tbody></table>"
+    note = ""
+    if missing:
+        note = (f'<p class="caution">Not in the spend file, so left out of this table and of the totals: '
+                f"{esc(', '.join(missing))}.</p>")
+    return f"<table><thead><tr>{th}</tr></thead><tbody>{''.join(rows)}</tbody></table>{note}"
 
 
 def _df_table(df: pd.DataFrame, fmt: dict | None = None) -> str:
@@ -218,6 +240,7 @@ def render_html(t: ReportTables, figures: dict[str, bytes], paragraphs: list[tup
     if not t.placebos.empty:
         parts.append(_df_table(t.placebos.drop(columns=["pair"])))
     if t.predictive is not None:
+        L = int(round((t.predictive_level or t.level) * 100))  # the check's own level, set when it was fitted
         inside = float(t.predictive["inside"].mean())
         parts.append(f"<h3>Posterior predictive check</h3><p>Observed conversions by campaign, outcome and arm "
                      f"fall inside their {L}% predictive interval in {inside:.0%} of {len(t.predictive)} groups "

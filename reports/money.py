@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import math
 
-__all__ = ["currency_symbol", "fmt_money", "fmt_pct", "fmt_int", "fmt_ratio", "fmt_prob"]
+__all__ = ["currency_symbol", "fmt_money", "fmt_pct", "fmt_int", "fmt_count", "fmt_ratio", "fmt_prob"]
 
 _SYMBOLS = {"USD": "$", "EUR": "€", "GBP": "£", "JPY": "¥", "CAD": "C$", "AUD": "A$", "CHF": "CHF "}
 
@@ -39,6 +39,15 @@ def fmt_int(x) -> str:
     if _bad(x):
         return "n/a"
     return f"{round(x):,}"
+
+
+def fmt_count(x, singular: str = "conversion", plural: str = "conversions", unit: bool = True) -> str:
+    """A whole count with its noun, singular for exactly one: ``1 conversion``, ``1,204 conversions``."""
+    if _bad(x):
+        return "n/a"
+    n = round(x)
+    text = f"{n:,}"
+    return f"{text} {singular if abs(n) == 1 else plural}" if unit else text
 
 
 def fmt_ratio(x) -> str:

@@ -6,15 +6,15 @@ import io
 import math
 from pathlib import Path
 
-import matplotlib
+import matplotlib as mpl
+import numpy as np
 
-matplotlib.use("Agg")
-import matplotlib.pyplot as plt  # noqa: E402
-import numpy as np  # noqa: E402
-
-from liftpool.data_prep.io import atomic_folder, write_json, write_table  # noqa: E402
-from liftpool.models.planning import Plan, width_curve  # noqa: E402
-from liftpool.reports.figures import STYLE  # noqa: E402
+from liftpool.data_prep.io import atomic_folder, write_json, write_table
+from liftpool.models.planning import Plan, width_curve
+from liftpool.reports.figures import (
+    STYLE,
+    new_figure,
+)
 
 __all__ = ["plan_figure", "write_plan", "plan_users_grid"]
 
@@ -38,8 +38,8 @@ def plan_figure(p: Plan, placebo_counts=(1, 2, 4, 8, 16)) -> tuple[bytes, object
     inp = p.inputs
     counts = placebo_counts if inp.bias else (0,)
     curve = width_curve(inp, plan_users_grid(p), placebo_counts=counts)
-    with plt.rc_context(STYLE):
-        fig, ax = plt.subplots(figsize=(7.2, 4.2))
+    with mpl.rc_context(STYLE):
+        fig, ax = new_figure((7.2, 4.2))
         for i, (m, g) in enumerate(curve.groupby("placebos", sort=True)):
             ls = LINESTYLES[i % len(LINESTYLES)]
             label = f"{m} placebo outcome{'s' if m != 1 else ''}" if inp.bias else "no bias terms"
@@ -57,7 +57,6 @@ def plan_figure(p: Plan, placebo_counts=(1, 2, 4, 8, 16)) -> tuple[bytes, object
         ax.legend(frameon=False, fontsize=8)
         buf = io.BytesIO()
         fig.savefig(buf, format="png", bbox_inches="tight")
-        plt.close(fig)
     return buf.getvalue(), curve
 
 

@@ -4,13 +4,13 @@ from __future__ import annotations
 
 import io
 
-import matplotlib
+import matplotlib as mpl
+import numpy as np
 
-matplotlib.use("Agg")
-import matplotlib.pyplot as plt  # noqa: E402
-import numpy as np  # noqa: E402
-
-from liftpool.reports.figures import STYLE  # noqa: E402
+from liftpool.reports.figures import (
+    STYLE,
+    new_figure,
+)
 
 __all__ = ["balance_figure", "appendix_table"]
 
@@ -28,8 +28,8 @@ def balance_figure(result) -> bytes:
     summ = result.balance_summary()
     labels = [_label(c, lv) for c, lv in zip(summ["covariate"], summ["level"], strict=True)]
     y = np.arange(len(labels))[::-1]
-    with plt.rc_context(STYLE):
-        fig, ax = plt.subplots(figsize=(7.2, 0.26 * len(labels) + 1.4))
+    with mpl.rc_context(STYLE):
+        fig, ax = new_figure((7.2, 0.26 * len(labels) + 1.4))
         ax.scatter(summ["mean_abs_smd_before"], y, facecolors="white", edgecolors="black", s=28, zorder=3,
                    label="before (no cells)")
         ax.scatter(summ["mean_abs_smd_after"], y, color="black", s=16, zorder=4,
@@ -44,7 +44,6 @@ def balance_figure(result) -> bytes:
         ax.legend(frameon=False, fontsize=8, loc="lower right")
         buf = io.BytesIO()
         fig.savefig(buf, format="png", bbox_inches="tight")
-        plt.close(fig)
     return buf.getvalue()
 
 

@@ -1,19 +1,74 @@
-"""Report tables computed from a fit's posterior draws (and the optional spend and prep summary).
+"""Report tables: the fit's estimands summarised at the report's level, formatted nowhere else.
 
-Every number here is a posterior quantity: a median, an equal-tailed interval or a
-probability over the draws stored in the fit.
+Every number comes from :mod:`liftpool.models.estimands` (draws of every reported quantity, the
+pooled rows included) through its one summary function; this module only arranges the summary into
+one row per unit (campaigns, then the portfolio and a new campaign) with machine-readable column
+keys in natural units (fractions, conversions, money). :data:`COLUMNS` gives each key its printed
+label and number kind, which the HTML, the XLSX and the text share.
 """
 
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
+import xarray as xr
 
+from liftpool.data_prep.errors import InputError
+from liftpool.models.estimands import (
+    PROBABILITIES,
+    add_money,
+    placebo_summary,
+    shrinkage_summary,
+    summarize,
+)
 from liftpool.models.fit import FitResult
+from liftpool.models.summary import NEW_CAMPAIGN, PORTFOLIO
 
-__all__ = ["ReportTables", "build_tables", "interval"]
+__all__ = ["ReportTables", "build_tables", "interval", "COLUMNS", "label", "KIND_OF_ROW"]
+
+#: column key: (printed label, number kind). ``{L}`` is the level in percent, ``{cur}`` the currency.
+COLUMNS = {
+    "campaign": ("campaign", "text"),
+    "row": ("row", "text"),
+    "users_seen": ("users seen", "int"),
+    "users_unseen": ("users unseen", "int"),
+    "nonviewable_share": ("non-viewable share of measured impressions", "share"),
+    "lift_naive": ("naive lift (median)", "pct"),
+    "lift_uncorrected": ("uncorrected lift (median)", "pct"),
+    "lift_uncorrected_lower": ("uncorrected lift, {L}% lower", "pct"),
+    "lift_uncorrected_upper": ("uncorrected lift, {L}% upper", "pct"),
+    "lift": ("bias-corrected lift (median)", "pct"),
+    "lift_lower50": ("lift, 50% lower", "pct"),
+    "lift_upper50": ("lift, 50% upper", "pct"),
+    "lift_lower": ("lift, {L}% lower", "pct"),
+    "lift_upper": ("lift, {L}% upper", "pct"),
+    "incremental_conversions": ("incremental conversions (median)", "count"),
+    "incremental_conversions_lower": ("incremental conversions, {L}% lower", "count"),
+    "incremental_conversions_upper": ("incremental conversions, {L}% upper", "count"),
+    "p_lift_positive": ("P(lift > 0)", "prob"),
+    "spend": ("spend ({cur})", "money"),
+    "cost_per_incremental_conversion": ("cost per incremental conversion, median ({cur})", "money"),
+    "cost_per_incremental_conversion_lower": ("cost per incremental conversion, {L}% lower ({cur})", "money"),
+    "cost_per_incremental_conversion_upper": ("cost per incremental conversion, {L}% upper ({cur})", "money"),
+    "incremental_revenue": ("incremental revenue, median ({cur})", "money"),
+    "incremental_revenue_lower": ("incremental revenue, {L}% lower ({cur})", "money"),
+    "incremental_revenue_upper": ("incremental revenue, {L}% upper ({cur})", "money"),
+    "return_on_ad_spend": ("return on ad spend (median)", "ratio"),
+    "return_on_ad_spend_lower": ("return on ad spend, {L}% lower", "ratio"),
+    "return_on_ad_spend_upper": ("return on ad spend, {L}% upper", "ratio"),
+    "p_paid_for_itself": ("P(paid for itself)", "prob"),
+    "notes": ("notes", "text"),
+}
+#: The printed name of each kind of row.
+KIND_OF_ROW = {"campaign": "campaign", "portfolio": "all campaigns", "new campaign": "a new campaign (predictive)"}
+
+
+def label(key: str, level: float, currency: str) -> str:
+    """The printed label of a column key at ``level`` and ``currency``."""
+    return COLUMNS[key][0].format(L=int(round(level * 100)), cur=currency)
 
 
 def interval(draws: np.ndarray, level: float) -> tuple[float, float]:
@@ -23,19 +78,24 @@ def interval(draws: np.ndarray, level: float) -> tuple[float, float]:
     return float(lo), float(hi)
 
 
-def _draws(fit: FitResult, name: str, campaign: str) -> np.ndarray | None:
-    post = fit.idata.posterior
-    if name not in post:
-        return None
-    return post[name].sel(campaign=campaign).values.ravel()
-
-
 @dataclass
 class ReportTables:
-    """All tables of a report (DataFrames with units in their column names)."""
+    """All tables of a report.
 
-    campaigns: pd.DataFrame
-    portfolio: dict
+    Attributes
+    ----------
+    results : DataFrame
+        One row per unit (campaigns, then the pooled rows), the :data:`COLUMNS` keys, natural units;
+        ``inf`` marks a value that is not bounded (printed as such, written as an empty cell).
+    summary : DataFrame
+        The tidy summary of the estimands at ``level`` (with money when spend was given).
+    estimands : Dataset
+        The draws the summary came from (figures read their densities from it).
+    """
+
+    results: pd.DataFrame
+    summary: pd.DataFrame
+    estimands: xr.Dataset
     placebos: pd.DataFrame
     shrinkage: pd.DataFrame
     diagnostics: pd.DataFrame
@@ -43,19 +103,85 @@ class ReportTables:
     settings: pd.DataFrame
     provenance: pd.DataFrame
     predictive: pd.DataFrame | None = None
-    draws: dict = field(default_factory=dict, repr=False)
     currency: str = "USD"
     level: float = 0.9
+    predictive_level: float | None = None
+    spend_given: bool = False
+    lift_spread: dict = field(default_factory=dict)
+
+    @property
+    def campaigns(self) -> pd.DataFrame:
+        """The campaign rows of :attr:`results`."""
+        return self.results[self.results["row"] == "campaign"].reset_index(drop=True)
+
+    def pooled(self, kind: str) -> dict | None:
+        """The row of the portfolio (``"portfolio"``) or of a new campaign (``"new campaign"``), if any."""
+        r = self.results[self.results["row"] == kind]
+        return None if r.empty else r.iloc[0].to_dict()
+
+    @property
+    def corrected(self) -> bool:
+        return bool(self.estimands.attrs.get("corrected", 1)) and "lift" in self.results.columns
 
     def named(self) -> dict[str, pd.DataFrame]:
-        """The tables that are written to CSV and XLSX, by file/sheet name."""
-        out = {"campaign_results": self.campaigns, "placebo_check": self.placebos, "shrinkage": self.shrinkage,
+        """The tables written to CSV and XLSX, by file/sheet name (machine keys, natural units)."""
+        out = {"campaign_results": self.results, "placebo_check": self.placebos, "shrinkage": self.shrinkage,
                "convergence": self.diagnostics, "model_settings": self.settings, "provenance": self.provenance}
         if self.prep is not None:
             out["data_preparation"] = self.prep
         if self.predictive is not None:
             out["predictive_check"] = self.predictive
         return out
+
+
+def _results(summary: pd.DataFrame, summary50: pd.DataFrame, fit: FitResult, nonviewable: dict,
+             spend_given: bool) -> pd.DataFrame:
+    """One row per unit from the tidy summaries (at the level, and at 50% for the lift's inner band)."""
+    cd = fit.idata.constant_data
+    camps = [str(c) for c in fit.idata.posterior.campaign.values]
+    seen = {c: int(cd["users_seen"].sel(campaign=c)) for c in camps}
+    unseen = {c: int(cd["users_unseen"].sel(campaign=c)) for c in camps}
+    s = summary.set_index(["campaign", "quantity"])
+    s50 = summary50.set_index(["campaign", "quantity"])
+    units = list(dict.fromkeys(summary["campaign"]))
+    units = camps + [u for u in (PORTFOLIO, NEW_CAMPAIGN) if u in units]
+    rows = []
+    for u in units:
+        kind = "campaign" if u in camps else ("portfolio" if u == PORTFOLIO else "new campaign")
+        r = {"campaign": u, "row": kind}
+        if kind == "campaign":
+            r.update(users_seen=seen[u], users_unseen=unseen[u], nonviewable_share=nonviewable.get(u, np.nan))
+        elif kind == "portfolio":
+            r.update(users_seen=sum(seen.values()), users_unseen=sum(unseen.values()), nonviewable_share=np.nan)
+        else:
+            r.update(users_seen=np.nan, users_unseen=np.nan, nonviewable_share=np.nan)
+
+        def get(q, col, src=s, u=u):
+            return float(src.loc[(u, q), col]) if (u, q) in src.index else np.nan
+
+        r["lift_naive"] = get("lift_naive", "median")
+        for q in ("lift_uncorrected", "lift", "incremental_conversions", "spend", "cost_per_incremental_conversion",
+                  "incremental_revenue", "return_on_ad_spend"):
+            r[q] = get(q, "median")
+            if q != "spend":
+                r[q + "_lower"], r[q + "_upper"] = get(q, "lower"), get(q, "upper")
+            if q == "lift":
+                r["lift_lower50"], r["lift_upper50"] = get(q, "lower", s50), get(q, "upper", s50)
+        for p in PROBABILITIES:
+            r[p] = get(p, "mean")
+        notes = []
+        if np.isinf(r.get("cost_per_incremental_conversion_upper", np.nan)):
+            notes.append("cost per incremental conversion not bounded above: incremental conversions may be zero or "
+                         "below")
+        if r.get("spend") == 0:
+            notes.append("spend is zero: no return on ad spend")
+        if spend_given and kind == "campaign" and not np.isfinite(r.get("spend", np.nan)):
+            notes.append("not in the spend file")
+        r["notes"] = "; ".join(notes)
+        rows.append(r)
+    out = pd.DataFrame(rows)
+    keep = [k for k in COLUMNS if k in out.columns and (k in ("campaign", "row", "notes") or out[k].notna().any())]
+    return out[keep]
 
 
 def build_tables(fit: FitResult, spend: pd.DataFrame | None = None, prep_campaigns: pd.DataFrame | None = None,
@@ -66,106 +192,35 @@ def build_tables(fit: FitResult, spend: pd.DataFrame | None = None, prep_campaig
     ----------
     fit : FitResult
     spend : DataFrame, optional
-        ``campaign, spend[, value_per_conversion]``.
+        ``campaign, spend[, value_per_conversion]`` (checked).
     prep_campaigns : DataFrame, optional
         The prep summary's per-campaign table (for the non-viewable share).
     currency : str
         ISO code used in money headers.
     level : float, optional
-        The main interval level (default: the fit's).
+        The interval level (default: the fit's).
     provenance : dict, optional
         Extra provenance rows (input hashes...).
     """
-    level = level or fit.settings.level
-    cd = fit.idata.constant_data
-    camps = [str(c) for c in fit.idata.posterior.campaign.values]
-    corrected = fit.corrected
-    main_q = "lift" if corrected else "lift_uncorrected"
-    spend_map = {} if spend is None else spend.set_index("campaign")["spend"].astype(float).to_dict()
-    value_map = ({} if spend is None or "value_per_conversion" not in spend.columns
-                 else spend.set_index("campaign")["value_per_conversion"].astype(float).dropna().to_dict())
+    level = level or fit.level
+    if not re.fullmatch(r"[A-Za-z]{3}", str(currency)):
+        raise InputError(problem=f"the currency {str(currency)[:40]!r} is not a three-letter ISO 4217 code",
+                         file="--currency (or [report] currency in liftpool.toml)",
+                         fix="give a code such as USD, EUR, GBP or SEK")
+    est = fit.estimands
+    if spend is not None:
+        est = add_money(est, spend)
+    summary = summarize(est, level)
+    summary50 = summarize(est[[v for v in ("lift",) if v in est]], 0.5) if "lift" in est else summary.iloc[:0]
     nv = {} if prep_campaigns is None else prep_campaigns.set_index("campaign")["nonviewable_share"].to_dict()
-    L = int(round(level * 100))
-    cur = currency.upper()
-    rows, draws = [], {}
-    for c in camps:
-        row = {"campaign": c,
-               "users seen": int(cd["users_seen"].sel(campaign=c)),
-               "users unseen": int(cd["users_unseen"].sel(campaign=c)),
-               "non-viewable share of measured impressions (%)": 100 * nv[c] if c in nv else np.nan}
-        naive = _draws(fit, "lift_naive", c)
-        row["naive lift, median (%)"] = (100 * np.median(naive)
-                                         if naive is not None and np.isfinite(naive).all() else np.nan)
-        unc = _draws(fit, "lift_uncorrected", c)
-        lo, hi = interval(unc, level)
-        row.update({"uncorrected lift, median (%)": 100 * np.median(unc),
-                    f"uncorrected lift, {L}% lower (%)": 100 * lo, f"uncorrected lift, {L}% upper (%)": 100 * hi})
-        d = {"lift_uncorrected": unc}
-        if corrected:
-            lift = _draws(fit, "lift", c)
-            inc = _draws(fit, "incremental_conversions", c)
-            lo50, hi50 = interval(lift, 0.5)
-            lo, hi = interval(lift, level)
-            ilo, ihi = interval(inc, level)
-            row.update({"lift, median (%)": 100 * np.median(lift), "lift, 50% lower (%)": 100 * lo50,
-                        "lift, 50% upper (%)": 100 * hi50, f"lift, {L}% lower (%)": 100 * lo,
-                        f"lift, {L}% upper (%)": 100 * hi,
-                        "incremental conversions, median": float(np.median(inc)),
-                        f"incremental conversions, {L}% lower": ilo, f"incremental conversions, {L}% upper": ihi,
-                        "P(lift > 0)": float(np.mean(lift > 0))})
-            d.update({"lift": lift, "incremental_conversions": inc})
-            if c in spend_map:
-                s = spend_map[c]
-                row[f"spend ({cur})"] = s
-                med = float(np.median(inc))
-                row[f"cost per incremental conversion, median ({cur})"] = s / med if med > 0 else np.inf
-                row[f"cost per incremental conversion, {L}% lower ({cur})"] = s / ihi if ihi > 0 else np.inf
-                row[f"cost per incremental conversion, {L}% upper ({cur})"] = s / ilo if ilo > 0 else np.inf
-                if c in value_map:
-                    rev = inc * value_map[c]
-                    roas = rev / s if s > 0 else np.full_like(rev, np.nan)
-                    rlo, rhi = interval(rev, level)
-                    qlo, qhi = interval(roas, level)
-                    row.update({f"incremental revenue, median ({cur})": float(np.median(rev)),
-                                f"incremental revenue, {L}% lower ({cur})": rlo,
-                                f"incremental revenue, {L}% upper ({cur})": rhi,
-                                "return on ad spend, median (x)": float(np.median(roas)),
-                                f"return on ad spend, {L}% lower (x)": qlo, f"return on ad spend, {L}% upper (x)": qhi,
-                                "P(return > 1)": float(np.mean(rev > s))})
-                    d["roas"] = roas
-        rows.append(row)
-        draws[c] = d
-    campaigns = pd.DataFrame(rows)
-
-    portfolio = {"n_campaigns": len(camps), "main_quantity": main_q}
-    s_tab = fit.summary.set_index(["campaign", "quantity"])
-    if corrected and ("(portfolio)", "lift") in s_tab.index:
-        post = fit.idata.posterior
-        inc_tot = post["incremental_conversions"].values.sum(axis=-1).ravel()
-        cf_tot = post["counterfactual_conversions"].values.sum(axis=-1).ravel()
-        pl = inc_tot / cf_tot
-        portfolio.update({"lift_median": float(np.median(pl)), "lift_interval": interval(pl, level),
-                          "inc_median": float(np.median(inc_tot)), "inc_interval": interval(inc_tot, level)})
-        draws["(portfolio)"] = {"lift": pl, "incremental_conversions": inc_tot}
-        spent = [c for c in camps if c in spend_map]
-        if spent:
-            total = float(sum(spend_map[c] for c in spent))
-            portfolio["spend"] = total
-            idx = [camps.index(c) for c in spent]
-            inc_sp = post["incremental_conversions"].values[..., idx]
-            if all(c in value_map for c in spent):
-                rev = (inc_sp * np.array([value_map[c] for c in spent])).sum(axis=-1).ravel()
-                portfolio.update({"roas_median": float(np.median(rev / total)),
-                                  "roas_interval": interval(rev / total, level),
-                                  "p_return": float(np.mean(rev > total))})
-                draws["(portfolio)"]["roas"] = rev / total
-        if ("(new campaign)", "lift") in s_tab.index:
-            r = s_tab.loc[("(new campaign)", "lift")]
-            portfolio["new_median"] = float(r["median"])
-            portfolio["new_interval"] = (float(r["lower"]), float(r["upper"]))
-
-    placebos = _placebo_table(fit, level)
-    shrink = _shrinkage_table(fit, level)
+    results = _results(summary, summary50, fit, nv, spend is not None)
+    spread = {}
+    post = fit.idata.posterior
+    if "lift_sd" in post and fit.corrected:
+        lo, hi = interval(post["lift_sd"].values, level)
+        spread = {"median": float(np.median(post["lift_sd"].values)), "lower": lo, "upper": hi}
+    placebos = placebo_summary(fit.idata, level)
+    shrink = shrinkage_summary(fit.idata, level)
     diag = pd.DataFrame([{"check": c.name, "value": c.value, "threshold": c.threshold, "passed": c.passed,
                           "worst parameter": c.worst, "what to do": "" if c.passed else c.advice}
                          for c in fit.diagnostics.checks]) if fit.diagnostics.checks else pd.DataFrame(
@@ -186,62 +241,10 @@ def build_tables(fit: FitResult, spend: pd.DataFrame | None = None, prep_campaig
                             "users_small_cells_dropped", "users_small_cells_merged", "users_seen", "users_unseen",
                             "cells", "target", "placebos") if c in prep_campaigns.columns]
         prep = prep_campaigns[keep].rename(columns=lambda x: x.replace("_", " "))
-    return ReportTables(campaigns=campaigns, portfolio=portfolio, placebos=placebos, shrinkage=shrink,
+    pp = fit.info.get("posterior_predictive") or {}
+    return ReportTables(results=results, summary=summary, estimands=est, placebos=placebos, shrinkage=shrink,
                         diagnostics=diag, prep=prep, settings=settings,
-                        provenance=pd.DataFrame(prov, columns=["item", "value"]), draws=draws,
-                        predictive=fit.predictive,
-                        currency=cur, level=level)
-
-
-def _placebo_table(fit: FitResult, level: float) -> pd.DataFrame:
-    """Each placebo's seen-vs-unseen effect (log odds) before and after the bias correction."""
-    cd = fit.idata.constant_data
-    post = fit.idata.posterior
-    roles = cd["pair_role"].values.astype(str)
-    rows = []
-    L = int(round(level * 100))
-    for i in np.flatnonzero(roles == "placebo"):
-        pair = str(cd["pair"].values[i])
-        camp, outcome = str(cd["pair_campaign"].values[i]), str(cd["pair_outcome"].values[i])
-        if "effect" in post:
-            before = post["effect"].isel(pair=i).values.ravel()
-            after = before - post["bias"].sel(campaign=camp).values.ravel()
-        else:  # quick mode: the estimate with its standard error, then minus the portfolio bias
-            rng = np.random.default_rng(i)
-            est, se = float(cd["pair_estimate"].values[i]), float(cd["pair_std_error"].values[i])
-            before = rng.normal(est, se, 4000)
-            bm = post["bias_mean"].values.ravel() if "bias_mean" in post else np.zeros(1)
-            after = before - rng.choice(bm, 4000)
-        blo, bhi = interval(before, level)
-        alo, ahi = interval(after, level)
-        rows.append({"campaign": camp, "placebo outcome": outcome, "pair": pair,
-                     "before correction, median (log odds)": float(np.median(before)),
-                     f"before, {L}% lower": blo, f"before, {L}% upper": bhi,
-                     "after correction, median (log odds)": float(np.median(after)),
-                     f"after, {L}% lower": alo, f"after, {L}% upper": ahi,
-                     "before excludes zero": bool(blo > 0 or bhi < 0), "after excludes zero": bool(alo > 0 or ahi < 0)})
-    return pd.DataFrame(rows)
-
-
-def _shrinkage_table(fit: FitResult, level: float) -> pd.DataFrame:
-    """Each campaign alone (its target estimate minus its own placebos' mean) versus pooled."""
-    cd = fit.idata.constant_data
-    post = fit.idata.posterior
-    est = pd.DataFrame({"campaign": cd["pair_campaign"].values.astype(str), "role": cd["pair_role"].values.astype(str),
-                        "estimate": cd["pair_estimate"].values, "se": cd["pair_std_error"].values})
-    pooled_bias = float(post["bias_mean"].mean()) if "bias_mean" in post else 0.0
-    rows = []
-    for c in [str(x) for x in post.campaign.values]:
-        e = est[est.campaign == c]
-        t = e[e.role == "target"].iloc[0]
-        pl = e[e.role == "placebo"]
-        b, bse = (float(pl.estimate.mean()), float(np.sqrt((pl.se**2).sum()) / len(pl))) if len(pl) else (pooled_bias, 0.0)
-        pooled = post["lift_logodds"].sel(campaign=c).values.ravel()
-        lo, hi = interval(pooled, level)
-        rows.append({"campaign": c, "alone (log odds)": float(t.estimate - b),
-                     "alone standard error": float(np.hypot(t.se, bse)),
-                     "pooled, median (log odds)": float(np.median(pooled)), "pooled lower": lo, "pooled upper": hi,
-                     "target conversions": int(cd["target_conversions_seen"].sel(campaign=c)
-                                               + cd["target_conversions_unseen"].sel(campaign=c)),
-                     "own placebos": int(len(pl))})
-    return pd.DataFrame(rows)
+                        provenance=pd.DataFrame(prov, columns=["item", "value"]),
+                        predictive=fit.predictive, currency=currency.upper(), level=level,
+                        predictive_level=pp.get("level", fit.level), spend_given=spend is not None,
+                        lift_spread=spread)

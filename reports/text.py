@@ -1,13 +1,52 @@
-"""Plain-language paragraphs for the finance reader."""
+"""Plain-language paragraphs for the finance reader, from the report's rows (natural units)."""
 
 from __future__ import annotations
 
-import numpy as np
+import math
 
-from liftpool.reports.money import fmt_int, fmt_money, fmt_pct, fmt_prob, fmt_ratio
+from liftpool.reports.money import fmt_count, fmt_money, fmt_pct, fmt_prob, fmt_ratio
 from liftpool.reports.tables import ReportTables
 
-__all__ = ["campaign_paragraphs", "portfolio_paragraph"]
+__all__ = ["campaign_paragraphs", "portfolio_paragraph", "cost_sentence", "SPREAD_FLOOR"]
+
+#: A spread of campaign lifts (sd, log odds) below this is "about the same" for the reader: 0.02
+#: log odds is a 2% relative difference in the odds (common practice, no source).
+SPREAD_FLOOR = 0.02
+
+
+def _finite(x) -> bool:
+    return x is not None and isinstance(x, (int, float)) and math.isfinite(x)
+
+
+def cost_sentence(r: dict, cur: str, subject: str = "Each extra conversion") -> str:
+    """The cost per incremental conversion in words, right in every case.
+
+    Cases: no spend row; zero spend; incremental conversions most likely zero or below (no cost can be
+    given); the interval reaching zero or below (no upper bound); bounded.
+    """
+    spend = r.get("spend")
+    if not _finite(spend):
+        return ""
+    if spend == 0:
+        return " Its spend is zero, so it has no cost per extra conversion and no return on spend."
+    med, lo, hi = (r.get("cost_per_incremental_conversion"), r.get("cost_per_incremental_conversion_lower"),
+                   r.get("cost_per_incremental_conversion_upper"))
+    if not _finite(med):
+        best = f" (at the favourable end of the interval it cost {fmt_money(lo, cur)} each)" if _finite(lo) else ""
+        return (f" It most likely added no conversions, so no cost per extra conversion can be given{best}; its "
+                f"spend was {fmt_money(spend, cur)}.")
+    if not _finite(hi):
+        return (f" {subject} most likely cost {fmt_money(med, cur)}, at best {fmt_money(lo, cur)}; the interval "
+                "includes no added conversions at all, so the cost has no upper bound.")
+    return f" {subject} cost {fmt_money(med, cur)} ({fmt_money(lo, cur)} to {fmt_money(hi, cur)})."
+
+
+def _return_sentence(r: dict, whole: str) -> str:
+    if not _finite(r.get("return_on_ad_spend")) or not _finite(r.get("p_paid_for_itself")):
+        return ""
+    return (f" Return on ad spend {fmt_ratio(r['return_on_ad_spend'])} ({fmt_ratio(r['return_on_ad_spend_lower'])} "
+            f"to {fmt_ratio(r['return_on_ad_spend_upper'])}); the chance {whole} paid for itself is "
+            f"{fmt_prob(r['p_paid_for_itself'])}.")
 
 
 def campaign_paragraphs(t: ReportTables, flags: dict) -> list[tuple[str, str]]:
@@ -18,51 +57,64 @@ def campaign_paragraphs(t: ReportTables, flags: dict) -> list[tuple[str, str]]:
     no_placebo = set(flags.get("no_placebo", []))
     for r in t.campaigns.to_dict(orient="records"):
         c = r["campaign"]
-        if "lift, median (%)" not in r:
-            out.append((c, f"uncorrected lift {fmt_pct(r['uncorrected lift, median (%)'] / 100)} ({L}% interval "
-                           f"{fmt_pct(r[f'uncorrected lift, {L}% lower (%)'] / 100)} to "
-                           f"{fmt_pct(r[f'uncorrected lift, {L}% upper (%)'] / 100)}); not corrected for bias "
-                           "because no placebo outcome was given."))
+        if not t.corrected:
+            out.append((c, f"uncorrected lift {fmt_pct(r['lift_uncorrected'])} ({L}% interval "
+                           f"{fmt_pct(r['lift_uncorrected_lower'])} to {fmt_pct(r['lift_uncorrected_upper'])}); "
+                           "not corrected for bias because no placebo outcome was given."))
             continue
-        s = (f"most likely added {fmt_int(r['incremental conversions, median'])} conversions ({L}% interval "
-             f"{fmt_int(r[f'incremental conversions, {L}% lower'])} to {fmt_int(r[f'incremental conversions, {L}% upper'])})"
-             f" among the {fmt_int(r['users seen'])} users who saw its ads: a lift of {fmt_pct(r['lift, median (%)'] / 100)}"
-             f" ({fmt_pct(r[f'lift, {L}% lower (%)'] / 100)} to {fmt_pct(r[f'lift, {L}% upper (%)'] / 100)}) over what "
-             "they would have done anyway.")
-        key = f"cost per incremental conversion, median ({cur})"
-        if key in r and np.isfinite(r.get(f"spend ({cur})", np.nan)):
-            s += (f" Each extra conversion cost {fmt_money(r[key], cur)} ({fmt_money(r[f'cost per incremental conversion, {L}% lower ({cur})'], cur)}"
-                  f" to {fmt_money(r[f'cost per incremental conversion, {L}% upper ({cur})'], cur)}).")
-        if "P(return > 1)" in r and np.isfinite(r.get("P(return > 1)", np.nan)):
-            s += (f" Return on ad spend {fmt_ratio(r['return on ad spend, median (x)'])}; the chance it paid for itself is "
-                  f"{fmt_prob(r['P(return > 1)'])}.")
-        if r["P(lift > 0)"] < 0.9:
-            s += f" The data cannot rule out that it added nothing (chance of a positive lift {fmt_prob(r['P(lift > 0)'])})."
+        s = (f"most likely added {fmt_count(r['incremental_conversions'])} ({L}% interval "
+             f"{fmt_count(r['incremental_conversions_lower'], unit=False)} to "
+             f"{fmt_count(r['incremental_conversions_upper'], unit=False)}) among the "
+             f"{fmt_count(r['users_seen'], 'user', 'users')} who saw its ads: a lift of {fmt_pct(r['lift'])} "
+             f"({fmt_pct(r['lift_lower'])} to {fmt_pct(r['lift_upper'])}) over what they would have done anyway.")
+        s += cost_sentence(r, cur)
+        s += _return_sentence(r, "it")
+        if r["lift_lower"] <= 0:
+            s += (f" The data cannot rule out that it added nothing: the {L}% interval reaches zero (chance of a "
+                  f"positive lift {fmt_prob(r['p_lift_positive'])}).")
         if c in no_placebo:
             s += " It has no placebo outcome of its own, so its bias is borrowed from the other campaigns."
+        if t.spend_given and not _finite(r.get("spend")):
+            s += " It is not in the spend file, so its cost is not shown and the totals leave it out."
         out.append((c, s))
     return out
 
 
 def portfolio_paragraph(t: ReportTables) -> str:
-    p = t.portfolio
+    """The portfolio's totals and the new-campaign outlook in words."""
     L = int(round(t.level * 100))
-    if "lift_median" not in p:
-        return (f"{p['n_campaigns']} campaign(s). No bias-corrected portfolio estimate: either no placebo outcome was "
-                "given or there is a single campaign.")
-    lo, hi = p["inc_interval"]
-    llo, lhi = p["lift_interval"]
-    s = (f"Across the {p['n_campaigns']} campaigns, display advertising most likely added {fmt_int(p['inc_median'])} "
-         f"conversions ({L}% interval {fmt_int(lo)} to {fmt_int(hi)}) among users who saw the ads, a lift of "
-         f"{fmt_pct(p['lift_median'])} ({fmt_pct(llo)} to {fmt_pct(lhi)}).")
-    if "spend" in p:
-        s += f" Total spend {fmt_money(p['spend'], t.currency)}."
-    if "roas_median" in p:
-        a, b = p["roas_interval"]
-        s += (f" Return on ad spend {fmt_ratio(p['roas_median'])} ({fmt_ratio(a)} to {fmt_ratio(b)}); the chance the "
-              f"portfolio paid for itself is {fmt_prob(p['p_return'])}.")
-    if "new_median" in p:
-        a, b = p["new_interval"]
-        s += (f" A new campaign like these would most likely lift conversions by about {fmt_pct(p['new_median'])} "
-              f"({fmt_pct(a)} to {fmt_pct(b)}): the spread between campaigns is real.")
+    p = t.pooled("portfolio")
+    n = len(t.campaigns)
+    if p is None or not _finite(p.get("lift")):
+        s = (f"{n} campaign(s). No bias-corrected portfolio estimate: no placebo outcome was given, so only the "
+             "uncorrected lift is shown.")
+        if t.spend_given:
+            s += (" A spend file was given, but costs and returns need the bias-corrected estimate, so they are not "
+                  "shown.")
+        return s
+    s = (f"Across the {n} campaigns, display advertising most likely added {fmt_count(p['incremental_conversions'])} "
+         f"({L}% interval {fmt_count(p['incremental_conversions_lower'], unit=False)} to "
+         f"{fmt_count(p['incremental_conversions_upper'], unit=False)}) among users who saw the ads, a lift of "
+         f"{fmt_pct(p['lift'])} ({fmt_pct(p['lift_lower'])} to {fmt_pct(p['lift_upper'])}).")
+    if _finite(p.get("spend")):
+        missing = t.estimands.attrs.get("campaigns_without_spend", "")
+        s += f" Total spend {fmt_money(p['spend'], t.currency)}"
+        s += (f" (leaving out {missing}, which the spend file does not list)." if missing else ".")
+        s += cost_sentence(p, t.currency, subject="Across the portfolio each extra conversion")
+        s += _return_sentence(p, "the portfolio")
+    elif t.spend_given:
+        s += " A spend file was given, but none of its campaigns has a bias-corrected estimate to cost."
+    new = t.pooled("new campaign")
+    if new is not None and _finite(new.get("lift")):
+        s += (f" A new campaign like these would most likely lift conversions by about {fmt_pct(new['lift'])} "
+              f"({fmt_pct(new['lift_lower'])} to {fmt_pct(new['lift_upper'])}, the range a campaign not yet seen "
+              "could fall in).")
+        sp = t.lift_spread
+        if sp:
+            if sp["lower"] > SPREAD_FLOOR:
+                s += (f" The campaigns' true lifts differ: their spread is {sp['lower']:.2f} to {sp['upper']:.2f} "
+                      "on the log-odds scale.")
+            else:
+                s += (" The data cannot tell whether the campaigns' true lifts differ: their spread could be close "
+                      f"to zero ({sp['lower']:.2f} to {sp['upper']:.2f} on the log-odds scale).")
     return s

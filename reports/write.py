@@ -5,6 +5,7 @@ from __future__ import annotations
 import os
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 
 from liftpool.data_prep.counts import PrepSummary
@@ -13,25 +14,92 @@ from liftpool.data_prep.io import atomic_folder
 from liftpool.models.fit import FitResult, load_fit
 from liftpool.reports.figures import make_figures
 from liftpool.reports.html import render_html
+from liftpool.reports.money import currency_symbol
 from liftpool.reports.spend import check_spend
-from liftpool.reports.tables import ReportTables, build_tables
+from liftpool.reports.tables import COLUMNS, ReportTables, build_tables, label
 from liftpool.reports.text import campaign_paragraphs, portfolio_paragraph
 
 __all__ = ["write_report", "write_xlsx"]
 
 
-def write_xlsx(tables: dict[str, pd.DataFrame], path: Path) -> None:
-    """One sheet per table (units are in the column headers)."""
-    with pd.ExcelWriter(path, engine="openpyxl") as xw:
-        for name, df in tables.items():
-            out = df.copy()
-            for c in out.columns:
-                if out[c].dtype == object:
-                    out[c] = out[c].astype(str)
-            out.to_excel(xw, sheet_name=name[:31], index=False)
-            ws = xw.sheets[name[:31]]
-            for i, col in enumerate(out.columns, start=1):
-                ws.column_dimensions[ws.cell(row=1, column=i).column_letter].width = min(48, max(10, len(str(col)) + 2))
+#: Excel number format of each number kind of reports.tables.COLUMNS (money adds the currency).
+XLSX_FORMATS = {"int": "#,##0", "count": "#,##0", "share": "0.0%", "pct": "+0.0%;-0.0%;0.0%", "prob": "0%",
+                "ratio": '0.00"x"', "money": "#,##0.00", "text": "@"}
+
+
+def _definitions(level: float, currency: str) -> pd.DataFrame:
+    """The definitions sheet: each column of the results, its unit and meaning."""
+    from liftpool.models.estimands import PROBABILITIES, QUANTITIES
+
+    rows = []
+    for key, (_, kind) in COLUMNS.items():
+        base = key
+        for suffix in ("_lower50", "_upper50", "_lower", "_upper"):
+            if key.endswith(suffix):
+                base = key[: -len(suffix)]
+        meaning = QUANTITIES.get(base, (None, ""))[1] or PROBABILITIES.get(base, (None, None, ""))[2]
+        if key.endswith(("_lower50", "_upper50")):
+            meaning = f"{'lower' if 'lower' in key else 'upper'} end of the 50% credible interval"
+        elif key.endswith(("_lower", "_upper")):
+            meaning = (f"{'lower' if key.endswith('_lower') else 'upper'} end of the {int(round(level * 100))}% "
+                       "equal-tailed credible interval")
+        extra = {"campaign": "campaign name (pooled rows: all campaigns, a new campaign)",
+                 "row": "campaign, all campaigns (the portfolio) or a new campaign (predictive)",
+                 "users_seen": "users who saw at least one ad", "users_unseen": "users served only non-viewable ads",
+                 "nonviewable_share": "share of measured impressions that were not viewable",
+                 "notes": "why a value is missing or not bounded"}.get(key)
+        rows.append({"column": label(key, level, currency), "key (CSV header)": key, "unit": kind,
+                     "meaning": extra or meaning or ""})
+    rows.append({"column": "(empty cell)", "key (CSV header)": "", "unit": "",
+                 "meaning": "not bounded (e.g. a cost when the incremental conversions may be zero or below) or "
+                            "not available; the notes column says which"})
+    return pd.DataFrame(rows)
+
+
+def _cell_value(v):
+    if isinstance(v, (float, np.floating)) and not np.isfinite(v):
+        return None  # never inf or NaN in a finance workbook: an empty cell, explained in the notes
+    if isinstance(v, np.generic):
+        return v.item()
+    return v
+
+
+def write_xlsx(tables: dict[str, pd.DataFrame], path: Path, level: float = 0.9, currency: str = "USD") -> None:
+    """One sheet per table, numbers in natural units with Excel number formats, a frozen header, a sheet
+    of definitions; text cells are always text (never formulas)."""
+    from openpyxl import Workbook
+    from openpyxl.styles import Font
+
+    wb = Workbook()
+    wb.remove(wb.active)
+    sheets = dict(tables)
+    if "campaign_results" in sheets:
+        sheets["definitions"] = _definitions(level, currency)
+    for name, df in sheets.items():
+        ws = wb.create_sheet(name[:31])
+        keyed = name == "campaign_results"
+        heads = [label(c, level, currency) if keyed and c in COLUMNS else str(c) for c in df.columns]
+        for j, h in enumerate(heads, start=1):
+            cell = ws.cell(row=1, column=j, value=h)
+            cell.data_type = "s"
+            cell.font = Font(bold=True)
+        for i, row in enumerate(df.itertuples(index=False), start=2):
+            for j, (col, v) in enumerate(zip(df.columns, row, strict=True), start=1):
+                v = _cell_value(v)
+                cell = ws.cell(row=i, column=j, value=v)
+                if isinstance(v, str):
+                    cell.data_type = "s"  # a name starting with "=" stays text
+                kind = COLUMNS.get(col, (None, None))[1] if keyed else None
+                if kind and kind != "text" and v is not None:
+                    cell.number_format = (f'"{currency_symbol(currency)}"' + XLSX_FORMATS[kind] if kind == "money"
+                                          else XLSX_FORMATS[kind])
+                elif isinstance(v, float):
+                    cell.number_format = "#,##0.0000"
+        ws.freeze_panes = "B2"
+        for j, h in enumerate(heads, start=1):
+            width = max([len(h)] + [len(str(_cell_value(x) or "")) for x in df.iloc[:, j - 1].head(200)])
+            ws.column_dimensions[ws.cell(row=1, column=j).column_letter].width = min(60, max(10, width + 2))
+    wb.save(path)
 
 
 def write_report(
@@ -100,7 +168,7 @@ def write_report(
         named = tables.named()
         if screen_tables is not None:
             _, named["screen_ranking"], named["screen_balance"] = screen_tables
-        write_xlsx(named, tmp / "tables.xlsx")
+        write_xlsx(named, tmp / "tables.xlsx", level=tables.level, currency=tables.currency)
         for name, df in named.items():
             df.to_csv(tmp / f"{name}.csv", index=False)
         (tmp / "figures").mkdir()

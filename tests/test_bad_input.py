@@ -133,6 +133,14 @@ COUNTS = pd.DataFrame({"campaign": ["C"] * 4, "cell": ["all"] * 4, "arm": ["seen
         (lambda d: pd.concat([d, d.iloc[[0]]]), "campaign, cell, arm, outcome", "repeat"),
         (lambda d: d.drop(columns="users"), "users", "missing"),
         (lambda d: d.assign(users=["100", "x", "50", "50"]), "users", "not numbers"),
+        (lambda d: d.assign(campaign="(portfolio)"), "campaign", "reserved campaign name"),
+        (lambda d: d.assign(campaign="(new campaign)"), "campaign", "reserved campaign name"),
+        (lambda d: d.assign(arm=["unseen"] * 4).drop_duplicates(["outcome"]), "arm",
+         "campaign 'C' has no seen users for its target outcome"),
+        (lambda d: d.assign(arm=["unexposed"] * 4).drop_duplicates(["outcome"]), "arm",
+         "campaign 'C' has no seen and no unseen users for its target outcome"),
+        (lambda d: d.assign(users=[100, 100, 0, 50], conversions=[5, 3, 0, 1]), "arm",
+         "campaign 'C' has no unseen users for its target outcome"),
     ],
 )
 def test_bad_counts_tables(change, column, words):
@@ -168,3 +176,11 @@ def test_invalid_start_lists_the_valid_choices():
     assert e.value.problem == ("invalid value 'advi' for 'init'; valid choices are 'auto', 'advi+adapt_diag', "
                                "'jitter+adapt_diag'")
     assert e.value.fix == "set 'init' to one of 'auto', 'advi+adapt_diag', 'jitter+adapt_diag'"
+
+
+def test_reserved_campaign_names_exact_message():
+    with pytest.raises(InputError) as e:
+        validate_counts(COUNTS.assign(campaign="(portfolio)"), "counts.csv")
+    assert e.value.problem == ("4 row(s) use a reserved campaign name ((portfolio), (new campaign): the report's "
+                               "pooled rows)")
+    assert e.value.fix == "rename the campaign"

@@ -151,7 +151,7 @@ def test_no_placebo_campaign_borrows_bias(demo_fit):
 def test_summary_shape_and_pooled_rows(demo_fit):
     fit, _ = demo_fit
     s = fit.summary
-    assert list(s.columns) == ["campaign", "quantity", "mean", "median", "lower", "upper", "level"]
+    assert list(s.columns) == ["campaign", "kind", "quantity", "mean", "median", "lower", "upper", "level"]
     for q in ("lift", "lift_uncorrected", "lift_naive", "incremental_conversions", "bias", "p_lift_positive"):
         assert (s.quantity == q).sum() >= 8, q
     assert {"(portfolio)", "(new campaign)"} <= set(s.campaign)
@@ -165,10 +165,12 @@ def test_summary_shape_and_pooled_rows(demo_fit):
 def test_save_load_roundtrip_and_no_overwrite(demo_fit, tmp_path):
     fit, _ = demo_fit
     out = fit.save(tmp_path / "fit1")
-    assert sorted(p.name for p in out.iterdir()) == ["fit.json", "posterior.nc", "predictive_check.csv",
-                                                     "summary.csv"]
+    assert sorted(p.name for p in out.iterdir()) == ["estimands.nc", "fit.json", "posterior.nc",
+                                                     "predictive_check.csv", "summary.csv"]
     back = load_fit(out)
     pd.testing.assert_frame_equal(back.summary, fit.summary)
+    np.testing.assert_allclose(back.estimands["lift"].values, fit.estimands["lift"].values, rtol=0, atol=0)
+    pd.testing.assert_frame_equal(back.summarize(0.5), fit.summarize(0.5))
     pd.testing.assert_frame_equal(back.predictive, fit.predictive, check_dtype=False)
     assert list(back.idata.posterior["lift"].campaign.values) == list(fit.idata.posterior.campaign.values)
     assert json.loads((out / "fit.json").read_text())["settings"]["seed"] == 21

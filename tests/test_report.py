@@ -19,14 +19,15 @@ from liftpool.reports.money import fmt_money, fmt_pct
 EVIL = "<script>alert(1)</script>"
 
 
-@pytest.fixture(scope="module")
-def small(tmp_path_factory):
+@pytest.fixture(scope="module", params=["quick", "full"])
+def small(tmp_path_factory, request):
     data = simulate(seed=5, scale=0.15)
     # rename one campaign to a hostile string: it must come out escaped everywhere
     for k in ("impressions", "outcomes", "spend", "truth"):
         data[k]["campaign"] = data[k]["campaign"].replace("tool-club", EVIL)
     res = prepare_counts(data["impressions"], data["conversions"], data["outcomes"], users=data["users"])
-    fit = fit_counts(res.counts, ModelSettings(seed=8), quick=True)
+    # every check below runs on a quick fit and on a full one (the same estimands, two routes)
+    fit = fit_counts(res.counts, ModelSettings(seed=8), quick=request.param == "quick")
     out = write_report(fit, tmp_path_factory.mktemp("r") / "report", spend=data["spend"], prep_summary=res.summary)
     return fit, res, data["spend"], out
 
@@ -44,50 +45,90 @@ def test_report_files(small):
 
 
 def test_every_number_equals_the_posterior_recomputed(small):
+    # an independent route: quantiles of the posterior draws by numpy, the users from the counts table,
+    # the spend from the spend file; the CSV is in natural units (fractions, conversions, money)
     fit, res, spend, out = small
-    table = pd.read_csv(out / "campaign_results.csv").set_index("campaign")
+    table = pd.read_csv(out / "campaign_results.csv", keep_default_na=False, na_values=[""]).set_index("campaign")
     post = fit.idata.posterior
     sp = spend.set_index("campaign")
     c = res.counts
-    for camp in table.index:
+    camps = [str(x) for x in post.campaign.values]
+    for camp in camps:
         r = table.loc[camp]
+        assert r["row"] == "campaign"
         lift = post["lift"].sel(campaign=camp).values.ravel()
         inc = post["incremental_conversions"].sel(campaign=camp).values.ravel()
         unc = post["lift_uncorrected"].sel(campaign=camp).values.ravel()
-        assert r["lift, median (%)"] == pytest.approx(100 * np.median(lift))
-        assert r["lift, 90% lower (%)"] == pytest.approx(100 * np.quantile(lift, 0.05))
-        assert r["lift, 90% upper (%)"] == pytest.approx(100 * np.quantile(lift, 0.95))
-        assert r["lift, 50% lower (%)"] == pytest.approx(100 * np.quantile(lift, 0.25))
-        assert r["uncorrected lift, median (%)"] == pytest.approx(100 * np.median(unc))
-        assert r["incremental conversions, median"] == pytest.approx(np.median(inc))
-        assert r["P(lift > 0)"] == pytest.approx(np.mean(lift > 0))
+        assert r["lift"] == pytest.approx(np.median(lift))
+        assert r["lift_lower"] == pytest.approx(np.quantile(lift, 0.05))
+        assert r["lift_upper"] == pytest.approx(np.quantile(lift, 0.95))
+        assert r["lift_lower50"] == pytest.approx(np.quantile(lift, 0.25))
+        assert r["lift_uncorrected"] == pytest.approx(np.median(unc))
+        assert r["incremental_conversions"] == pytest.approx(np.median(inc))
+        assert r["p_lift_positive"] == pytest.approx(np.mean(lift > 0))
         s, v = sp.loc[camp, "spend"], sp.loc[camp, "value_per_conversion"]
-        assert r["spend (USD)"] == pytest.approx(s)
-        med = np.median(inc)
-        assert r["cost per incremental conversion, median (USD)"] == pytest.approx(s / med)
-        assert r["return on ad spend, median (x)"] == pytest.approx(np.median(inc * v / s))
-        assert r["P(return > 1)"] == pytest.approx(np.mean(inc * v > s))
+        assert r["spend"] == pytest.approx(s)
+        assert r["cost_per_incremental_conversion"] == pytest.approx(s / np.median(inc))
+        assert r["cost_per_incremental_conversion_lower"] == pytest.approx(s / np.quantile(inc, 0.95))
+        assert r["return_on_ad_spend"] == pytest.approx(np.median(inc * v / s))
+        assert r["p_paid_for_itself"] == pytest.approx(np.mean(inc * v > s))
         # users straight from the counts table (not from the fit)
         t = c[(c.campaign == camp) & (c.role == "target")]
-        assert r["users seen"] == t[t.arm == "seen"].users.sum()
-        assert r["users unseen"] == t[t.arm == "unseen"].users.sum()
+        assert r["users_seen"] == t[t.arm == "seen"].users.sum()
+        assert r["users_unseen"] == t[t.arm == "unseen"].users.sum()
         pc = res.summary.campaigns.set_index("campaign").loc[camp]
         share = (pc.measured_impressions - pc.viewable_impressions) / pc.measured_impressions
-        assert r["non-viewable share of measured impressions (%)"] == pytest.approx(100 * share)
+        assert r["nonviewable_share"] == pytest.approx(share)
+    # the portfolio row: totals over campaigns, draw by draw
+    p = table[table["row"] == "portfolio"].iloc[0]
+    inc = post["incremental_conversions"].values.sum(axis=-1).ravel()
+    cf = post["counterfactual_conversions"].values.sum(axis=-1).ravel()
+    assert p["incremental_conversions"] == pytest.approx(np.median(inc))
+    assert p["lift"] == pytest.approx(np.median(inc / cf))
+    assert p["lift_upper"] == pytest.approx(np.quantile(inc / cf, 0.95))
+    total = sp.loc[camps, "spend"].sum()
+    assert p["spend"] == pytest.approx(total)
+    rev = (post["incremental_conversions"].values * sp.loc[camps, "value_per_conversion"].to_numpy()).sum(axis=-1)
+    assert p["return_on_ad_spend"] == pytest.approx(np.median(rev.ravel() / total))
+    assert p["users_seen"] == table.loc[camps, "users_seen"].sum()
+    # a new campaign: exp(Normal(lift_mean, lift_sd)) - 1, here from fresh draws (Monte Carlo tolerance)
+    n = table[table["row"] == "new campaign"].iloc[0]
+    rng = np.random.default_rng(0)
+    lm, ls = post["lift_mean"].values.ravel(), post["lift_sd"].values.ravel()
+    i = rng.integers(0, lm.size, 200_000)
+    ref = np.expm1(lm[i] + ls[i] * rng.standard_normal(i.size))
+    assert n["lift"] == pytest.approx(np.median(ref), abs=0.01)
+    assert n["lift_lower"] == pytest.approx(np.quantile(ref, 0.05), abs=0.02)
+    assert n["lift_upper"] == pytest.approx(np.quantile(ref, 0.95), abs=0.03)
 
 
-def test_xlsx_has_the_same_numbers(small):
+def test_xlsx_natural_units_formats_and_pooled_rows(small):
     _, _, _, out = small
-    wb = openpyxl.load_workbook(out / "tables.xlsx", read_only=True)
+    wb = openpyxl.load_workbook(out / "tables.xlsx")
     assert {"campaign_results", "placebo_check", "shrinkage", "convergence", "model_settings", "provenance",
-            "data_preparation"} <= set(wb.sheetnames)
-    rows = list(wb["campaign_results"].values)
-    sheet = pd.DataFrame(rows[1:], columns=rows[0]).set_index("campaign")
-    csv = pd.read_csv(out / "campaign_results.csv").set_index("campaign")
-    for col in ("lift, median (%)", "incremental conversions, median", "return on ad spend, median (x)",
-                "P(return > 1)", "users seen"):
-        np.testing.assert_allclose(sheet[col].astype(float), csv[col].astype(float), rtol=1e-12)
-    assert any("(USD)" in str(h) for h in rows[0])  # units in the headers
+            "data_preparation", "definitions"} <= set(wb.sheetnames)
+    ws = wb["campaign_results"]
+    heads = [c.value for c in ws[1]]
+    rows = list(ws.iter_rows(min_row=2, values_only=True))
+    sheet = pd.DataFrame(rows, columns=heads)
+    csv = pd.read_csv(out / "campaign_results.csv", keep_default_na=False, na_values=[""])
+    assert list(sheet["row"]) == list(csv["row"]) and {"portfolio", "new campaign"} <= set(sheet["row"])
+    for key, head in (("lift", "bias-corrected lift (median)"), ("incremental_conversions",
+                      "incremental conversions (median)"), ("return_on_ad_spend", "return on ad spend (median)"),
+                      ("p_paid_for_itself", "P(paid for itself)"), ("users_seen", "users seen")):
+        np.testing.assert_allclose(sheet[head].astype(float), csv[key].astype(float), rtol=1e-12)
+    assert "spend (USD)" in heads and ws.freeze_panes == "B2"
+    col = {h: i for i, h in enumerate(heads)}
+    first = list(ws.iter_rows(min_row=2, max_row=2))[0]
+    assert first[col["bias-corrected lift (median)"]].number_format == "+0.0%;-0.0%;0.0%"
+    assert first[col["spend (USD)"]].number_format == '"$"#,##0.00'
+    assert first[col["users seen"]].number_format == "#,##0"
+    # never inf or NaN in a cell: empty instead
+    for r in rows:
+        for v in r:
+            assert not (isinstance(v, float) and not np.isfinite(v))
+    defs = {r[1]: r for r in wb["definitions"].iter_rows(min_row=2, values_only=True)}
+    assert "lift" in defs and "fraction" not in str(defs["lift"][2])  # unit kind printed (pct)
 
 
 class _Collect(HTMLParser):
@@ -126,7 +167,11 @@ def test_plain_language_summary_numbers(small):
     inc = fit.idata.posterior["incremental_conversions"].sel(campaign=camp).values.ravel()
     s = spend.set_index("campaign").loc[camp, "spend"]
     assert f"most likely added {round(float(np.median(inc))):,} conversions" in html
-    assert f"Each extra conversion cost {fmt_money(s / np.median(inc))}" in html
+    # the cost sentence from the spend file and the posterior (bounded here: the interval is above zero)
+    lo, hi = np.quantile(inc, [0.05, 0.95])
+    assert lo > 0
+    assert (f"Each extra conversion cost {fmt_money(s / np.median(inc))} ({fmt_money(s / hi)} to "
+            f"{fmt_money(s / lo)})") in html
 
 
 def test_not_converged_is_on_the_first_screen(tmp_path):

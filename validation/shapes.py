@@ -63,6 +63,8 @@ def main(argv=None) -> pd.DataFrame:
     for kv in a.set:
         k, v = kv.split("=", 1)
         kind = type(getattr(ModelSettings(), k))
+        if kind is type(None):  # an optional number (target_accept)
+            kind = float
         over[k] = (v.lower() in ("1", "true", "yes")) if kind is bool else kind(v)
     s = ModelSettings.from_mapping(over)
     rows = []
