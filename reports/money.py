@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import math
 
+import pandas as pd
+
 __all__ = ["currency_symbol", "fmt_money", "fmt_pct", "fmt_int", "fmt_count", "fmt_ratio", "fmt_prob"]
 
 _SYMBOLS = {"USD": "$", "EUR": "€", "GBP": "£", "JPY": "¥", "CAD": "C$", "AUD": "A$", "CHF": "CHF "}
@@ -16,7 +18,7 @@ def currency_symbol(code: str) -> str:
 
 
 def _bad(x) -> bool:
-    return x is None or (isinstance(x, float) and (math.isnan(x) or math.isinf(x)))
+    return x is None or x is pd.NA or (isinstance(x, float) and (math.isnan(x) or math.isinf(x)))
 
 
 def fmt_money(x, code: str = "USD", decimals: int | None = None) -> str:

@@ -180,6 +180,8 @@ def _results(summary: pd.DataFrame, summary50: pd.DataFrame, fit: FitResult, non
         r["notes"] = "; ".join(notes)
         rows.append(r)
     out = pd.DataFrame(rows)
+    for k in ("users_seen", "users_unseen"):
+        out[k] = out[k].astype("Int64")  # whole numbers, empty for a new campaign
     keep = [k for k in COLUMNS if k in out.columns and (k in ("campaign", "row", "notes") or out[k].notna().any())]
     return out[keep]
 

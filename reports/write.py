@@ -57,6 +57,8 @@ def _definitions(level: float, currency: str) -> pd.DataFrame:
 
 
 def _cell_value(v):
+    if v is pd.NA or v is None:
+        return None
     if isinstance(v, (float, np.floating)) and not np.isfinite(v):
         return None  # never inf or NaN in a finance workbook: an empty cell, explained in the notes
     if isinstance(v, np.generic):

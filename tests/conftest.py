@@ -47,7 +47,8 @@ if not SPARK_READY and os.environ.get("LIFTPOOL_REQUIRE_SPARK") == "1":
     raise RuntimeError(f"LIFTPOOL_REQUIRE_SPARK=1 but Spark cannot run: {SPARK_REASON}")
 #: Mark for tests that run Spark in local mode (they skip, with the reason, where Spark cannot run;
 #: CI sets LIFTPOOL_REQUIRE_SPARK=1 so that they never skip there).
-needs_spark = pytest.mark.skipif(not SPARK_READY, reason=SPARK_REASON)
+#: Skipped where Spark cannot start; slow where it can (a JVM per session, seconds per query).
+needs_spark = [pytest.mark.skipif(not SPARK_READY, reason=SPARK_REASON), pytest.mark.slow]
 _SPARK = {}
 
 

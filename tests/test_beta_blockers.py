@@ -12,8 +12,11 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
+import pytest
 
 from liftpool.models import ModelSettings, fit_counts
+
+pytestmark = pytest.mark.slow  # an MCMC fit
 
 # control deaths/total, treated deaths/total (BDA3 Table 5.4)
 TRIALS = [(3, 39, 3, 38), (14, 116, 7, 114), (11, 93, 5, 69), (127, 1520, 102, 1533), (27, 365, 28, 355),

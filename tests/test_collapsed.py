@@ -17,6 +17,8 @@ from liftpool.models import ModelSettings, make_design
 from liftpool.models import collapsed as co
 from liftpool.models.conditional import build_curves, cell_tables
 
+pytestmark = pytest.mark.slow  # dense brute-force sums
+
 
 def setup(shape, seed=3):
     counts, _ = shape_counts(shape, seed)

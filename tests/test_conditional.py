@@ -102,6 +102,7 @@ def test_interpolant_pytensor_equals_numpy():
     np.testing.assert_allclose(f, cs.evaluate(psi, pairs), rtol=1e-12, atol=1e-9)
 
 
+@pytest.mark.slow
 def test_placebo_residual_quadrature_matches_brute_force_integral():
     # known truth: the residual integral by adaptive scipy quadrature of the same interpolated curve
     import pytensor.tensor as pt

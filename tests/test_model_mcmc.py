@@ -13,6 +13,8 @@ from liftpool.data_prep import CountingRules, prepare_counts, simulate
 from liftpool.models import ModelSettings, fit_counts, load_fit
 from liftpool.models.errors import InputError
 
+pytestmark = pytest.mark.slow  # full MCMC fits
+
 COLS = ["campaign", "cell", "arm", "outcome", "role", "users", "conversions"]
 FAST = ModelSettings(draws=500, tune=500, seed=5)
 

@@ -19,7 +19,7 @@ from liftpool.reports.money import fmt_money, fmt_pct
 EVIL = "<script>alert(1)</script>"
 
 
-@pytest.fixture(scope="module", params=["quick", "full"])
+@pytest.fixture(scope="module", params=["quick", pytest.param("full", marks=pytest.mark.slow)])
 def small(tmp_path_factory, request):
     data = simulate(seed=5, scale=0.15)
     # rename one campaign to a hostile string: it must come out escaped everywhere

@@ -16,6 +16,8 @@ import pytest
 from liftpool.data_prep import write_scenario
 from liftpool.workspace import Workspace
 
+pytestmark = pytest.mark.slow  # full fits, kills, re-fits
+
 
 def run(*args, **kw):
     return subprocess.run([sys.executable, "-m", "liftpool", *map(str, args)], capture_output=True, text=True, **kw)
