@@ -17,7 +17,7 @@ from pathlib import Path
 import pandas as pd
 
 __all__ = ["atomic_path", "atomic_folder", "write_table", "write_json", "write_text", "read_table", "file_sha256",
-           "input_sha256"]
+           "input_sha256", "spreadsheet_safe", "FORMULA_STARTS"]
 
 
 @contextlib.contextmanager
@@ -136,4 +136,23 @@ def input_sha256(inputs) -> dict[str, str]:
         for n, p in enumerate(v if isinstance(v, (list, tuple)) else [v]):
             if "://" not in str(p) and Path(p).is_file():
                 out[f"{kind}[{n}] {Path(p).name}"] = file_sha256(p)
+    return out
+
+
+#: A text cell starting with one of these is a formula to a spreadsheet (OWASP, "CSV Injection").
+FORMULA_STARTS = ("=", "+", "-", "@", "\t", "\r")
+
+
+def spreadsheet_safe(df: pd.DataFrame) -> pd.DataFrame:
+    """A copy whose text cells cannot run as spreadsheet formulas: a leading ``'`` before any text that
+    starts with :data:`FORMULA_STARTS` (numbers are left alone).
+
+    For the tables people open (reports, screens, comparisons); data files that liftpool reads back
+    (counts tables) keep their values exactly.
+    """
+    out = df.copy()
+    for col in out.columns:
+        if out[col].dtype == object or pd.api.types.is_string_dtype(out[col]):
+            out[col] = out[col].map(lambda v: "'" + v if isinstance(v, str) and v.startswith(FORMULA_STARTS) else v)
+    out.columns = ["'" + c if isinstance(c, str) and c.startswith(FORMULA_STARTS) else c for c in out.columns]
     return out

@@ -178,6 +178,35 @@ def _load_spark(con, kind: str, source) -> Table:
     return Table(kind=kind, label=label, raw=raw, types=types, n_rows=int(n_rows))
 
 
+#: Characters DuckDB's readers take as a file pattern (glob) rather than as part of a name.
+GLOB_CHARACTERS = frozenset("*?[]{}")
+_LINKS: dict = {}
+
+
+def _literal_path(path: Path) -> Path:
+    """A path DuckDB reads as exactly this one file.
+
+    DuckDB expands ``*``, ``?`` and ``[...]`` in file names, so ``impressions[12].csv`` would read
+    ``impressions1.csv``. A name with such characters is read through a symbolic link with a plain
+    name (in a private temporary folder, removed when the process ends)."""
+    if not GLOB_CHARACTERS & set(str(path)):
+        return path
+    import atexit
+    import shutil
+    import tempfile
+
+    if "dir" not in _LINKS:
+        _LINKS["dir"] = Path(tempfile.mkdtemp(prefix="liftpool-inputs-"))
+        atexit.register(shutil.rmtree, _LINKS["dir"], True)
+    key = str(path.resolve())
+    if key not in _LINKS:
+        suffix = "".join(x for x in path.suffixes[-2:] if not GLOB_CHARACTERS & set(x))
+        link = _LINKS["dir"] / f"input{len(_LINKS)}{suffix}"
+        link.symlink_to(path.resolve())
+        _LINKS[key] = link
+    return _LINKS[key]
+
+
 def _load(con: duckdb.DuckDBPyConnection, kind: str, source) -> Table:
     from liftpool.data_prep.engine_spark import is_spark
 
@@ -202,7 +231,7 @@ def _load(con: duckdb.DuckDBPyConnection, kind: str, source) -> Table:
             if path.stat().st_size == 0:
                 raise InputError(problem="the file is empty", file=str(path),
                                  fix=f"export the {kind} table again; it needs a header and data rows")
-        p = "[" + ", ".join(_lit(str(x)) for x in paths) + "]"
+        p = "[" + ", ".join(_lit(str(_literal_path(x))) for x in paths) + "]"
         reader = (f"read_csv({p}, header = true, all_varchar = true, union_by_name = true)" if fmt == "csv"
                   else f"read_parquet({p}, union_by_name = true)")
         try:

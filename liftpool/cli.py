@@ -226,6 +226,9 @@ def _install_interrupt_watchdog(grace_seconds: float = 10.0) -> None:
         raise KeyboardInterrupt
 
     signal.signal(signal.SIGINT, handler)
+    # a scheduler's or `kill`'s SIGTERM ends the command the same way: the sampler's worker processes
+    # are stopped and nothing is half-written (a SIGKILL cannot be caught: the workspace lock recovers)
+    signal.signal(signal.SIGTERM, handler)
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -105,7 +105,7 @@ def cmd_history(args, console) -> int:
 
 
 def cmd_compare(args, console) -> int:
-    from liftpool.data_prep.io import write_table
+    from liftpool.data_prep.io import spreadsheet_safe, write_table
     from liftpool.workspace import Workspace
 
     ws = Workspace.open(args.workspace)
@@ -113,7 +113,7 @@ def cmd_compare(args, console) -> int:
     table, png = ws.compare(a, b)
     out = ws.path / "reports" / f"compare-{a}-vs-{b}"
     out.mkdir(parents=True, exist_ok=True)
-    write_table(table, out / "compare.csv")
+    write_table(spreadsheet_safe(table), out / "compare.csv")
     (out / "compare.png").write_bytes(png)
     cols = ["campaign", f"lift median ({a})", f"lift median ({b})", "change in lift median",
             "change in interval width", f"bias median, log odds ({a})", f"bias median, log odds ({b})"]

@@ -96,18 +96,18 @@ class ScreenResult:
 
     def save(self, folder: str | Path) -> Path:
         """Write ``screen.json``, the CSV tables and ``balance.png`` into a new folder."""
-        from liftpool.data_prep.io import atomic_folder, write_json, write_table
+        from liftpool.data_prep.io import atomic_folder, spreadsheet_safe, write_json, write_table
         from liftpool.reports.screening import balance_figure
 
         folder = Path(folder)
         with atomic_folder(folder) as tmp:
             write_json(self.to_dict(), tmp / "screen.json")
-            write_table(self.ranking, tmp / "ranking.csv")
-            write_table(self.steps, tmp / "steps.csv")
-            write_table(self.balance_before.assign(stage="before"), tmp / "balance_before.csv")
-            write_table(self.balance_after.assign(stage="after"), tmp / "balance_after.csv")
-            write_table(self.association, tmp / "placebo_association.csv")
-            write_table(self.balance_summary(), tmp / "balance_summary.csv")
+            write_table(spreadsheet_safe(self.ranking), tmp / "ranking.csv")
+            write_table(spreadsheet_safe(self.steps), tmp / "steps.csv")
+            write_table(spreadsheet_safe(self.balance_before.assign(stage="before")), tmp / "balance_before.csv")
+            write_table(spreadsheet_safe(self.balance_after.assign(stage="after")), tmp / "balance_after.csv")
+            write_table(spreadsheet_safe(self.association), tmp / "placebo_association.csv")
+            write_table(spreadsheet_safe(self.balance_summary()), tmp / "balance_summary.csv")
             (tmp / "balance.png").write_bytes(balance_figure(self))
         return folder
 

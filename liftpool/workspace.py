@@ -65,6 +65,53 @@ def _as_list(v) -> list[str]:
     return [str(x) for x in v] if isinstance(v, list) else [str(v)]
 
 
+def _pid_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+def _recover_stale_lock(path: Path, held: str, f, wait: float = 5.0) -> bool:
+    """Take over a lock whose command is gone: True once the lock is ours.
+
+    The lock names the process that took it. When that process no longer exists, the lock is held
+    only by processes it left behind (a killed fit's sampler workers inherit the lock's descriptor,
+    and a SIGKILL gives the fit no chance to stop them). Those processes are still holding the
+    lock file open; they are stopped, and the lock is taken. A lock whose process is alive is never
+    touched.
+    """
+    import re
+    import signal
+    import time
+
+    m = re.search(r"process (\d+)", held)
+    if not m or _pid_alive(int(m.group(1))):
+        return False
+    target = str(path.resolve())
+    me = os.getpid()
+    for entry in Path("/proc").glob("[0-9]*"):
+        pid = int(entry.name)
+        if pid == me:
+            continue
+        try:
+            if any(os.readlink(fd) == target for fd in (entry / "fd").iterdir()):
+                os.kill(pid, signal.SIGKILL)
+        except OSError:
+            continue
+    deadline = time.monotonic() + wait
+    while time.monotonic() < deadline:
+        try:
+            fcntl.flock(f, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            return True
+        except BlockingIOError:
+            time.sleep(0.1)
+    return False
+
+
 class Workspace:
     """A workspace folder (see the module docstring)."""
 
@@ -179,9 +226,10 @@ class Workspace:
             except BlockingIOError:
                 f.seek(0)
                 held = f.read().strip() or "another command"
-                raise WorkspaceBusyError(
-                    f"{self.path}: the workspace is busy ({held}); wait for that command to finish, then run "
-                    "this one again") from None
+                if not _recover_stale_lock(self.path / ".lock", held, f):
+                    raise WorkspaceBusyError(
+                        f"{self.path}: the workspace is busy ({held}); wait for that command to finish, then run "
+                        "this one again") from None
             f.seek(0)
             f.truncate()
             f.write(f"{what}, process {os.getpid()}, since {_now()}")
@@ -286,10 +334,10 @@ class Workspace:
             holder["summary"] = res.summary
 
         name = self._build_generation(build)
+        self._switch(name)  # current first, then the config (see add_placebo)
         if config is not None:
             self.config = config
             self._write_config()
-        self._switch(name)
         return holder["summary"]
 
     def _hashes(self, config: dict | None = None) -> dict:
@@ -347,11 +395,15 @@ class Workspace:
             write_json(res.summary.to_dict(), tmp / "counts.summary.json")
             holder["summary"], holder["rows"] = res.summary, rows
 
-        # build the new preparation; then list the new files in the config; then make it current
+        # build the new preparation, make it current, then list the new files in the config. A crash
+        # between the last two leaves counts that already have the new placebo and a config that
+        # does not list it yet: a retry of the same add-placebo then succeeds (it recounts and lists
+        # it), and a fit in between uses the counts, which include it. The other order left a config
+        # listing a placebo the counts lacked, and refused the retry as "already listed".
         name = self._build_generation(build)
+        self._switch(name)
         self.config = new_config
         self._write_config()
-        self._switch(name)
         return holder["summary"], holder["rows"]
 
     def fit(self, quick: bool = False, progress: Callable[[str], None] | None = None, progressbar: bool = False,

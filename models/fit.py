@@ -229,19 +229,24 @@ def _interrupt_watch():
     if threading.current_thread() is not threading.main_thread():
         yield lambda: False
         return
-    previous = signal.getsignal(signal.SIGINT)
+    # Ctrl-C, and a SIGTERM (a scheduler, `kill`): both stop the sampler's workers and end the fit
+    sigs = (signal.SIGINT, signal.SIGTERM)
+    previous = {sig: signal.getsignal(sig) for sig in sigs}
 
     def handler(signum, frame):
         flag["hit"] = True
-        if callable(previous) and previous not in (signal.default_int_handler,):
-            previous(signum, frame)  # e.g. the command line's watchdog
+        prev = previous[signum]
+        if callable(prev) and prev not in (signal.default_int_handler,):
+            prev(signum, frame)  # e.g. the command line's watchdog
         raise KeyboardInterrupt
 
-    signal.signal(signal.SIGINT, handler)
+    for sig in sigs:
+        signal.signal(sig, handler)
     try:
         yield lambda: flag["hit"]
     finally:
-        signal.signal(signal.SIGINT, previous)
+        for sig in sigs:
+            signal.signal(sig, previous[sig])
 
 
 def counts_hash(counts: pd.DataFrame) -> str:

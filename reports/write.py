@@ -10,7 +10,7 @@ import pandas as pd
 
 from liftpool.data_prep.counts import PrepSummary
 from liftpool.data_prep.errors import InputError
-from liftpool.data_prep.io import atomic_folder
+from liftpool.data_prep.io import atomic_folder, spreadsheet_safe
 from liftpool.models.fit import FitResult, load_fit
 from liftpool.reports.figures import make_figures
 from liftpool.reports.html import render_html
@@ -172,7 +172,7 @@ def write_report(
             _, named["screen_ranking"], named["screen_balance"] = screen_tables
         write_xlsx(named, tmp / "tables.xlsx", level=tables.level, currency=tables.currency)
         for name, df in named.items():
-            df.to_csv(tmp / f"{name}.csv", index=False)
+            spreadsheet_safe(df).to_csv(tmp / f"{name}.csv", index=False)
         (tmp / "figures").mkdir()
         for name, png in figures.items():
             (tmp / "figures" / name).write_bytes(png)

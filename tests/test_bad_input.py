@@ -184,3 +184,63 @@ def test_reserved_campaign_names_exact_message():
     assert e.value.problem == ("4 row(s) use a reserved campaign name ((portfolio), (new campaign): the report's "
                                "pooled rows)")
     assert e.value.fix == "rename the campaign"
+
+
+def test_file_names_with_pattern_characters_are_read_literally(tmp_path):
+    # DuckDB expands * ? [..] in file names: impressions[12].csv must not read impressions1.csv
+    from pathlib import Path
+
+    from liftpool.data_prep import write_scenario
+
+    paths = write_scenario(tmp_path / "a", seed=3, scale=0.05, fmt="csv")
+    good = prepare_counts(paths["impressions"], paths["conversions"], paths["outcomes"], users=paths["users"])
+    odd = tmp_path / "impressions[12].csv"
+    odd.write_bytes(Path(paths["impressions"]).read_bytes())
+    decoy = tmp_path / "impressions1.csv"  # what the pattern would match
+    decoy.write_text(Path(paths["impressions"]).read_text().splitlines()[0] + "\n")
+    got = prepare_counts(odd, paths["conversions"], paths["outcomes"], users=paths["users"])
+    pd.testing.assert_frame_equal(got.counts, good.counts)
+    star = tmp_path / "imp*.csv"
+    star.write_bytes(Path(paths["impressions"]).read_bytes())
+    got = prepare_counts(star, paths["conversions"], paths["outcomes"], users=paths["users"])
+    pd.testing.assert_frame_equal(got.counts, good.counts)
+
+
+@pytest.mark.parametrize("cls, key, value, message", [
+    ("CountingRules", "unexposed", "no", "'unexposed' must be true or false (no quotes), got 'no'"),
+    ("ModelSettings", "seed", "abc", "'seed' must be a whole number, got 'abc'"),
+    ("ModelSettings", "draws", 2.5, "'draws' must be a whole number, got 2.5"),
+    ("ModelSettings", "level", "0.9", "'level' must be a number, got '0.9'"),
+    ("ModelSettings", "outcome_bias", 1, "'outcome_bias' must be true or false (no quotes), got 1"),
+    ("ModelSettings", "target_accept", "high", "'target_accept' must be a number, got 'high'"),
+])
+def test_settings_values_are_type_checked_exact_message(cls, key, value, message):
+    from liftpool.data_prep import CountingRules
+    from liftpool.data_prep.errors import ConfigError
+    from liftpool.models import ModelSettings
+
+    C = {"CountingRules": CountingRules, "ModelSettings": ModelSettings}[cls]
+    with pytest.raises(ConfigError) as e:
+        C.from_mapping({key: value})
+    assert e.value.problem == message
+
+
+def test_workspace_config_with_a_wrong_type_exits_2(tmp_path):
+    import subprocess
+    import sys
+
+    from liftpool.data_prep import write_scenario
+
+    paths = write_scenario(tmp_path / "in", seed=3, scale=0.05)
+    ws = tmp_path / "ws"
+    args = [sys.executable, "-m", "liftpool"]
+    subprocess.run(args + ["init", str(ws), "--impressions", str(paths["impressions"]), "--conversions",
+                           str(paths["conversions"]), "--outcomes", str(paths["outcomes"])], check=True,
+                   capture_output=True)
+    cfg = ws / "liftpool.toml"
+    cfg.write_text(cfg.read_text().replace("[model]", "[model]\ndraws = 2.5", 1) if "[model]" in cfg.read_text()
+                   else cfg.read_text() + "\n[model]\ndraws = 2.5\n")
+    r = subprocess.run(args + ["check", str(ws)], capture_output=True, text=True)
+    assert r.returncode == 2, r.stdout + r.stderr
+    assert "'draws' must be a whole number, got 2.5" in r.stdout + r.stderr
+    assert "Traceback" not in r.stderr

@@ -191,3 +191,25 @@ def test_importing_the_reports_leaves_the_plotting_backend_alone():
             "liftpool.reports.screening, liftpool.reports.compare; print(matplotlib.get_backend())")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
     assert out.strip() == "svg"
+
+
+def test_formula_and_mathtext_names_are_inert(tmp_path):
+    # OWASP "CSV Injection": a text cell starting with = + - @ runs as a formula in a spreadsheet
+    import openpyxl
+
+    rows = []
+    names = {"=1+1": "@SUM(A1)", "+cmd": "$\\frac{x}{$"}
+    for camp, placebo in names.items():
+        for arm, x in (("seen", 40), ("unseen", 25)):
+            rows += [(camp, "all", arm, f"t {camp}", "target", 3000, x), (camp, "all", arm, placebo, "placebo", 3000, 20)]
+    counts = pd.DataFrame(rows, columns=["campaign", "cell", "arm", "outcome", "role", "users", "conversions"])
+    fit = fit_counts(counts, ModelSettings(seed=2), quick=True)
+    out = write_report(fit, tmp_path / "r")  # the mathtext name must not break the figures
+    wb = openpyxl.load_workbook(out / "tables.xlsx")
+    cells = [c for ws in wb.worksheets for row in ws.iter_rows() for c in row]
+    assert not [c.coordinate for c in cells if c.data_type == "f"]
+    assert any(c.value == "=1+1" and c.data_type == "s" for c in cells)
+    text = (out / "campaign_results.csv").read_text()
+    assert "'=1+1" in text and "'+cmd" in text and "\n=1+1" not in text
+    placebo = (out / "placebo_check.csv").read_text()
+    assert "'@SUM(A1)" in placebo

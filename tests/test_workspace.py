@@ -110,6 +110,28 @@ def test_add_placebo_equals_preparing_from_scratch(tmp_path, data):
     assert len(cfg["outcomes"]) == 2 and len(cfg["conversions"]) == 2
 
 
+def test_add_placebo_interrupted_before_the_config_is_written_can_be_retried(tmp_path, data, monkeypatch):
+    # a crash (or a full disk) after the new counts became current and before liftpool.toml was written
+    a = Workspace.init(tmp_path / "a", data["impressions"], [data["conversions"]], [data["outcomes"]],
+                       users=data["users"])
+    a.prepare()
+
+    def full_disk(self):
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(Workspace, "_write_config", full_disk)
+    with pytest.raises(OSError):
+        a.add_placebo(data["new_placebos"], data["later"])
+    monkeypatch.undo()
+    w = Workspace.open(tmp_path / "a")
+    assert len(w.config["inputs"]["outcomes"]) == 1  # not listed yet ...
+    new = set(pd.read_csv(data["new_placebos"])["outcome"])
+    assert new <= set(w.counts()["outcome"])  # ... but counted: a fit now includes it
+    w.add_placebo(data["new_placebos"], data["later"])  # the retry is not refused as "already listed"
+    w = Workspace.open(tmp_path / "a")
+    assert len(w.config["inputs"]["outcomes"]) == 2 and new <= set(w.counts()["outcome"])
+
+
 def test_add_placebo_rejects_targets_and_duplicates(tmp_path, data):
     ws = Workspace.init(tmp_path / "w", data["impressions"], [data["conversions"]], [data["outcomes"]])
     ws.prepare()
@@ -149,16 +171,22 @@ def fitted_ws(tmp_path_factory, data):
     return ws
 
 
-@pytest.mark.parametrize("sig", [signal.SIGINT, signal.SIGKILL])
-def test_killed_fit_leaves_workspace_intact(fitted_ws, sig):
+@pytest.mark.parametrize("sig, group", [(signal.SIGINT, True), (signal.SIGKILL, True), (signal.SIGTERM, False),
+                                        (signal.SIGKILL, False)])
+def test_killed_fit_leaves_workspace_intact(fitted_ws, sig, group):
+    # Ctrl-C in a terminal and kill -9 of the job reach the whole group; `kill PID` and `kill -9 PID`
+    # reach the command alone, and a SIGKILL leaves its sampler workers behind holding the lock
     ws = fitted_ws
     before = snapshot(ws / "fits") | {"CURRENT": (ws / "prepared" / "CURRENT").read_bytes()}
     proc = start("fit", ws, "--draws", "20000", "--tune", "500", "-q")
     _wait_for_lock(ws, proc)
-    time.sleep(4)  # compiling or sampling
-    stop(proc, sig)  # Ctrl-C in a terminal, or kill -9 of the job
+    time.sleep(6)  # compiling, then sampling in the worker processes
+    if group:
+        stop(proc, sig)
+    else:
+        os.kill(proc.pid, sig)
     proc.wait(timeout=120)
-    if sig == signal.SIGINT:
+    if sig != signal.SIGKILL:
         assert proc.returncode == 130
     else:
         time.sleep(1)  # let the killed group's worker processes go
@@ -186,3 +214,30 @@ def test_second_concurrent_fit_is_refused(fitted_ws):
     finally:
         stop(proc)
         proc.wait(timeout=60)
+
+
+def test_a_lock_left_by_a_dead_command_is_recovered(tmp_path):
+    # a killed fit's workers inherit the lock; the command that took it is gone: the next command
+    # stops the leftovers and takes the lock (a live command's lock is never touched)
+    from liftpool.workspace import _recover_stale_lock  # noqa: F401 - the code under test
+
+    lock = tmp_path / ".lock"
+    code = f"""
+import fcntl, os, subprocess, sys, time
+f = open({str(lock)!r}, "a+")
+fcntl.flock(f, fcntl.LOCK_EX | fcntl.LOCK_NB)
+f.write("fit, process %d, since now" % os.getpid()); f.flush()
+child = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(120)"], pass_fds=(f.fileno(),),
+                         stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+print(child.pid, flush=True)
+os._exit(0)
+"""
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
+    orphan = int(out.split()[0])
+    assert Path(f"/proc/{orphan}").exists()
+    ws = Workspace.__new__(Workspace)
+    ws.path = tmp_path
+    with ws.lock("test"):
+        assert "test, process" in lock.read_text()
+    time.sleep(0.2)
+    assert not Path(f"/proc/{orphan}").exists() or "Z" in Path(f"/proc/{orphan}/stat").read_text().split()[2]
