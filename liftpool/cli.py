@@ -7,6 +7,7 @@ Exit codes: 0 ok, 1 internal error, 2 bad input, 3 fit not converged
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 import traceback
 from pathlib import Path
@@ -119,8 +120,7 @@ def _register_later(sub) -> None:
 
 def _cmd_prepare(args, console: Console) -> int:
     from liftpool.data_prep import CountingRules, prepare_counts
-    from liftpool.data_prep.io import write_json, write_table
-    from liftpool.data_prep.sources import file_format
+    from liftpool.data_prep.io import atomic_path, write_json, write_table
 
     if args.workspace:
         return _prepare_workspace(args, console)
@@ -131,7 +131,12 @@ def _cmd_prepare(args, console: Console) -> int:
         raise InputError(problem=f"missing {', '.join(missing)}",
                          fix="give a workspace (liftpool prepare WS) or the files and --out")
     out = Path(args.out)
-    file_format(out)  # an unknown extension is an input error before any work
+    # checked before any work: the table formats liftpool writes, and not a folder
+    if not out.name.lower().endswith((".parquet", ".pq", ".csv")):
+        raise InputError(problem="the counts file must end in .parquet or .csv (compressed CSV is not written)",
+                         file=str(out), fix="give --out counts.parquet (recommended) or --out counts.csv")
+    if out.is_dir():
+        raise InputError(problem="--out is a folder", file=str(out), fix="give a file name such as counts.parquet")
     rules = CountingRules(**_rules_from_args(args))
     spark = None
     if args.engine == "spark":
@@ -142,9 +147,13 @@ def _cmd_prepare(args, console: Console) -> int:
     res = prepare_counts(args.impressions, args.conversions, args.outcomes, users=args.users, spend=args.spend,
                          rules=rules, engine=args.engine, progress=console.step, spark=spark)
     res.summary.totals["input_sha256"] = input_hashes(args)
-    write_table(res.counts, out)
-    summary_path = out.with_name(out.name.split(".")[0] + ".summary.json")
-    write_json(res.summary.to_dict(), summary_path)
+    # the summary is named after its own counts file (counts.v1.parquet -> counts.v1.summary.json), and
+    # both are written in full before either replaces an earlier one: a full disk leaves the old pair
+    summary_path = out.with_name(out.name[: -len(out.suffix)] + ".summary.json")
+    with atomic_path(summary_path) as tmp_summary, atomic_path(out) as tmp_counts:
+        write_json(res.summary.to_dict(), tmp_summary)
+        write_table(res.counts, tmp_counts.with_name(tmp_counts.name + out.suffix))
+        os.replace(tmp_counts.with_name(tmp_counts.name + out.suffix), tmp_counts)
     console.out(res.summary.render())
     console.out()
     console.out(f"counts: {out} ({len(res.counts):,} rows)")

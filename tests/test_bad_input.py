@@ -244,3 +244,25 @@ def test_workspace_config_with_a_wrong_type_exits_2(tmp_path):
     assert r.returncode == 2, r.stdout + r.stderr
     assert "'draws' must be a whole number, got 2.5" in r.stdout + r.stderr
     assert "Traceback" not in r.stderr
+
+
+def test_prepare_out_names_and_pairs(tmp_path):
+    import subprocess
+    import sys
+
+    from liftpool.data_prep import write_scenario
+
+    p = write_scenario(tmp_path / "in", seed=3, scale=0.05)
+    base = [sys.executable, "-m", "liftpool", "prepare", "--impressions", str(p["impressions"]), "--conversions",
+            str(p["conversions"]), "--outcomes", str(p["outcomes"])]
+    # a compressed CSV is refused before any work, with exit 2 and nothing written
+    r = subprocess.run(base + ["--out", str(tmp_path / "counts.csv.gz")], capture_output=True, text=True)
+    assert r.returncode == 2 and "must end in .parquet or .csv" in r.stderr and "Traceback" not in r.stderr
+    assert not list(tmp_path.glob("counts*"))
+    (tmp_path / "dir.parquet").mkdir()
+    r = subprocess.run(base + ["--out", str(tmp_path / "dir.parquet")], capture_output=True, text=True)
+    assert r.returncode == 2 and "--out is a folder" in r.stderr
+    # two versions get two summaries
+    for v in ("v1", "v2"):
+        assert subprocess.run(base + ["--out", str(tmp_path / f"counts.{v}.parquet")], capture_output=True).returncode == 0
+    assert (tmp_path / "counts.v1.summary.json").is_file() and (tmp_path / "counts.v2.summary.json").is_file()
