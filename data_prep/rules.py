@@ -77,8 +77,9 @@ class CountingRules(OptionsMixin):
         object.__setattr__(self, "view_history_breaks", tuple(float(b) for b in self.view_history_breaks))
         if self.extra:
             raise ConfigError.unknown_keys(self.extra, self.option_names())
-        if not self.window_days > 0:
-            raise ConfigError(problem=f"'window_days' must be positive, got {self.window_days!r}",
+        if not (isinstance(self.window_days, (int, float)) and 0 < self.window_days < 36_500):
+            raise ConfigError(problem=f"'window_days' must be a positive number of days below 36,500, got "
+                                      f"{self.window_days!r}",
                               fix="set window_days to a number of days such as 14")
         if self.small_cells not in SMALL_CELL_POLICIES:
             raise ConfigError.invalid_choice("small_cells", self.small_cells, SMALL_CELL_POLICIES)

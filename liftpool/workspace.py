@@ -39,6 +39,7 @@ from liftpool.data_prep.io import (
     write_text,
 )
 from liftpool.models import FitResult, ModelSettings, fit_counts, load_fit
+from liftpool.models.summary import PORTFOLIO
 
 __all__ = ["Workspace", "WorkspaceBusyError", "CONFIG_NAME", "REPORT_KEYS", "INPUT_KEYS"]
 
@@ -504,14 +505,23 @@ class Workspace:
         rows = []
         for fid in self.fit_ids():
             d = self.path / "fits" / fid
-            m = json.loads((d / "manifest.json").read_text())
-            s = pd.read_csv(d / "summary.csv")
-            port = s[(s.campaign == "(portfolio)") & (s.quantity == "lift")]
-            bias = s[s.quantity == "bias"]["median"]
-            rows.append({"fit": fid, "created": m["created"], "mode": m["mode"], "converged": m["converged"],
-                         "placebo pairs": m.get("placebo_pairs"), "prepared": m.get("prepared"),
-                         "median bias (log odds)": float(bias.median()) if len(bias) else float("nan"),
-                         "portfolio lift (median)": float(port["median"].iloc[0]) if len(port) else float("nan")})
+            try:
+                m = json.loads((d / "manifest.json").read_text())
+                s = pd.read_csv(d / "summary.csv")
+                port = s[(s.campaign == PORTFOLIO) & (s.quantity == "lift")]
+                bias = s[s.quantity == "bias"]["median"]
+                mode = str(m["mode"])
+                rows.append({"fit": fid, "created": m["created"], "mode": mode,
+                             # a quick fit has no sampler, so there is nothing to converge
+                             "converged": ("yes" if m["converged"] else "NO") if mode == "full" else "n/a (quick)",
+                             "placebo pairs": m.get("placebo_pairs"), "prepared": m.get("prepared"),
+                             "median bias (log odds)": float(bias.median()) if len(bias) else float("nan"),
+                             "portfolio lift (median)": float(port["median"].iloc[0]) if len(port) else float("nan")})
+            except Exception as exc:  # noqa: BLE001 - one damaged fit must not hide the others
+                rows.append({"fit": fid, "created": "", "mode": "", "converged": "",
+                             "placebo pairs": None, "prepared": None, "median bias (log odds)": float("nan"),
+                             "portfolio lift (median)": float("nan"),
+                             "note": f"damaged: {type(exc).__name__}: {str(exc).splitlines()[0][:120] if str(exc) else ''}"})
         return pd.DataFrame(rows)
 
     def compare(self, a: str, b: str) -> tuple[pd.DataFrame, bytes]:
@@ -527,7 +537,7 @@ def _repr_html_(self) -> str:  # Jupyter: the workspace's fit history
 
     h = self.history()
     rows = "".join(f"<tr><td>{escape(str(r['fit']))}</td><td>{escape(str(r['mode']))}</td>"
-                   f"<td>{'yes' if r['converged'] else 'NO'}</td><td>{r['placebo pairs']}</td>"
+                   f"<td>{escape(str(r['converged']))}</td><td>{r['placebo pairs']}</td>"
                    f"<td>{r['portfolio lift (median)']:+.1%}</td></tr>" for _, r in h.iterrows())
     return (f"<div><p>liftpool workspace {escape(str(self.path))}</p><table><tr><th>fit</th><th>mode</th>"
             f"<th>converged</th><th>placebo pairs</th><th>portfolio lift</th></tr>{rows}</table></div>")

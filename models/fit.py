@@ -32,7 +32,7 @@ from liftpool.models.estimands import estimand_draws, summarize
 from liftpool.models.gaussian import gaussian_posterior
 from liftpool.models.quick import quick_fit, quick_relative
 from liftpool.models.settings import ModelSettings, default_cores
-from liftpool.models.summary import NEW_CAMPAIGN, PORTFOLIO, prior_lift_quantiles
+from liftpool.models.summary import NEW_CAMPAIGN, PORTFOLIO, SUMMARY_COLUMNS, prior_lift_quantiles
 
 __all__ = ["FitResult", "fit_counts", "load_fit", "package_versions", "choose_init", "free_parameters", "AUTO_ADVI_FROM"]
 
@@ -130,7 +130,7 @@ class FitResult:
         with atomic_folder(folder) as tmp:
             self.idata.to_netcdf(str(tmp / "posterior.nc"), engine="h5netcdf")
             self.summary.to_csv(tmp / "summary.csv", index=False)
-            enc = {v: {"zlib": True, "complevel": 4} for v in self.estimands.data_vars}
+            enc = {v: {"zlib": True, "complevel": 4, "fletcher32": True} for v in self.estimands.data_vars}
             self.estimands.to_netcdf(tmp / "estimands.nc", engine="h5netcdf", encoding=enc)
             if self.predictive is not None:
                 self.predictive.to_csv(tmp / "predictive_check.csv", index=False)
@@ -197,26 +197,61 @@ def choose_init(n_free: int, s: ModelSettings) -> str:
 
 
 def load_fit(folder: str | os.PathLike) -> FitResult:
-    """Load a fit saved by :meth:`FitResult.save`."""
+    """Load a fit saved by :meth:`FitResult.save`.
+
+    A missing, truncated or altered file is an :class:`InputError` naming it (exit 2), never a
+    traceback. ``posterior.nc`` and ``estimands.nc`` are HDF5 files with checksums on their
+    compressed data, so flipped bytes there fail to load rather than load as other numbers.
+    """
     folder = Path(folder)
     meta_path = folder / "fit.json"
     if not meta_path.is_file():
         raise InputError(problem="not a fit folder (no fit.json)", file=str(folder),
                          fix="give the folder written by 'liftpool fit'")
-    meta = json.loads(meta_path.read_text())
-    idata = az.from_netcdf(str(folder / "posterior.nc"), engine="h5netcdf")
-    summary = pd.read_csv(folder / "summary.csv", keep_default_na=False, na_values=[""])
+
+    def broken(path: Path, exc: BaseException) -> InputError:
+        first = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        return InputError(problem=f"the fit's file is missing or damaged ({first[:200]})", file=str(path),
+                          fix="fit again into a new folder (an earlier fit is never changed by liftpool)")
+
+    try:
+        meta = json.loads(meta_path.read_text())
+        flags_d = {k: v for k, v in meta["flags"].items() if k != "messages"}
+        settings = ModelSettings.from_mapping(meta["settings"])
+        diagnostics = Diagnostics.from_dict(meta["diagnostics"])
+        mode = str(meta["mode"])
+    except Exception as exc:  # noqa: BLE001 - any damage is bad input
+        raise broken(meta_path, exc) from None
+    try:
+        idata = az.from_netcdf(str(folder / "posterior.nc"), engine="h5netcdf")
+        if "posterior" not in idata.groups():
+            raise ValueError("no posterior group")
+        idata.posterior.load()
+    except Exception as exc:  # noqa: BLE001
+        raise broken(folder / "posterior.nc", exc) from None
+    try:
+        summary = pd.read_csv(folder / "summary.csv", keep_default_na=False, na_values=[""])
+        missing = [c for c in SUMMARY_COLUMNS if c not in summary.columns and c != "kind"]
+        if missing:
+            raise ValueError(f"columns missing: {', '.join(missing)}")
+    except Exception as exc:  # noqa: BLE001
+        raise broken(folder / "summary.csv", exc) from None
     est_path = folder / "estimands.nc"
     estimands = None
     if est_path.is_file():
-        with xr.open_dataset(est_path, engine="h5netcdf") as ds:
-            estimands = ds.load()
+        try:
+            with xr.open_dataset(est_path, engine="h5netcdf") as ds:
+                estimands = ds.load()
+        except Exception as exc:  # noqa: BLE001
+            raise broken(est_path, exc) from None
     pc = folder / "predictive_check.csv"
-    predictive = pd.read_csv(pc, keep_default_na=False, na_values=[""]) if pc.is_file() else None
-    flags_d = {k: v for k, v in meta["flags"].items() if k != "messages"}
-    return FitResult(idata=idata, summary=summary, diagnostics=Diagnostics.from_dict(meta["diagnostics"]),
-                     flags=CampaignFlags(**flags_d), settings=ModelSettings.from_mapping(meta["settings"]),
-                     mode=meta["mode"], info=meta.get("info", {}), predictive=predictive, estimands=estimands)
+    try:
+        predictive = pd.read_csv(pc, keep_default_na=False, na_values=[""]) if pc.is_file() else None
+        flags = CampaignFlags(**flags_d)
+    except Exception as exc:  # noqa: BLE001
+        raise broken(pc, exc) from None
+    return FitResult(idata=idata, summary=summary, diagnostics=diagnostics, flags=flags, settings=settings,
+                     mode=mode, info=meta.get("info", {}), predictive=predictive, estimands=estimands)
 
 
 @contextlib.contextmanager

@@ -16,7 +16,7 @@ def compare_fits(a: FitResult, b: FitResult, name_a: str, name_b: str) -> tuple[
     import matplotlib as mpl
     from matplotlib.ticker import FuncFormatter
 
-    from liftpool.reports.figures import new_figure
+    from liftpool.reports.figures import new_figure, plain_text
 
     qa = "lift" if a.corrected else "lift_uncorrected"
     qb = "lift" if b.corrected else "lift_uncorrected"
@@ -55,7 +55,7 @@ def compare_fits(a: FitResult, b: FitResult, name_a: str, name_b: str) -> tuple[
                 ax1.plot(t[f"lift median ({tag})"], y + off, m, color=color, label=f"fit {tag}")
             ax2.plot(t[f"bias median, log odds ({tag})"], y + off, m, color=color, label=f"fit {tag}")
         ax1.axvline(0, color="black", linewidth=0.8)
-        ax1.set_yticks(y, camps)
+        ax1.set_yticks(y, [plain_text(c) for c in camps])
         ax1.set_xlabel("lift (median and interval)")
         ax1.xaxis.set_major_formatter(FuncFormatter(lambda v, _p: f"{v:+.0%}"))
         ax1.legend(fontsize=8, loc="lower right")

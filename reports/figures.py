@@ -16,7 +16,7 @@ from matplotlib.figure import Figure
 from liftpool.reports.money import fmt_prob
 from liftpool.reports.tables import KIND_OF_ROW, ReportTables
 
-__all__ = ["make_figures", "new_figure", "png_bytes"]
+__all__ = ["make_figures", "new_figure", "png_bytes", "plain_text"]
 
 STYLE = {"font.size": 9, "axes.edgecolor": "black", "axes.grid": True, "grid.color": "0.88",
          "grid.linewidth": 0.6, "axes.spines.top": False, "axes.spines.right": False, "savefig.dpi": 130,
@@ -48,9 +48,12 @@ def _png(fig) -> bytes:
     return buf.getvalue()
 
 
-def _plain(text: str) -> str:
+def plain_text(text: str) -> str:
     """A user's string as literal text in a figure: no mathtext (``$...$``) interpretation."""
     return str(text).replace("$", r"\$")
+
+
+_plain = plain_text
 
 
 def _row_label(r: dict) -> str:

@@ -7,10 +7,7 @@ import io
 import matplotlib as mpl
 import numpy as np
 
-from liftpool.reports.figures import (
-    STYLE,
-    new_figure,
-)
+from liftpool.reports.figures import STYLE, new_figure, plain_text
 
 __all__ = ["balance_figure", "appendix_table"]
 
@@ -33,12 +30,12 @@ def balance_figure(result) -> bytes:
         ax.scatter(summ["mean_abs_smd_before"], y, facecolors="white", edgecolors="black", s=28, zorder=3,
                    label="before (no cells)")
         ax.scatter(summ["mean_abs_smd_after"], y, color="black", s=16, zorder=4,
-                   label="after: " + (", ".join(result.suggested) if result.suggested else "no cells suggested"))
+                   label="after: " + (plain_text(", ".join(result.suggested)) if result.suggested else "no cells suggested"))
         for yy, a, b in zip(y, summ["mean_abs_smd_before"], summ["mean_abs_smd_after"], strict=True):
             ax.plot([a, b], [yy, yy], color="0.6", linewidth=0.8, zorder=2)
         ax.axvline(0.1, color="black", linestyle="--", linewidth=0.8)
         ax.set_yticks(y)
-        ax.set_yticklabels(labels, fontsize=7.5)
+        ax.set_yticklabels([plain_text(x) for x in labels], fontsize=7.5)
         ax.set_xlabel("|standardized mean difference| seen vs unseen (users-weighted mean over campaigns)")
         ax.set_xlim(left=0)
         ax.legend(frameon=False, fontsize=8, loc="lower right")

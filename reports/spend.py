@@ -17,7 +17,18 @@ def read_spend(path) -> pd.DataFrame:
     p = Path(path)
     if not p.is_file():
         raise InputError(problem="file not found", file=str(p), fix="check the path of the spend file")
-    return check_spend(read_table(p), str(p))
+    if p.stat().st_size == 0:
+        raise InputError(problem="the file is empty", file=str(p),
+                         fix="write a header (campaign,spend[,value_per_conversion]) and one row per campaign")
+    try:
+        table = read_table(p)
+    except UnicodeDecodeError as exc:
+        raise InputError(problem=f"the file is not UTF-8 text (byte {exc.start})", file=str(p),
+                         fix="save the spend file as UTF-8 CSV (or Parquet)") from None
+    except Exception as exc:  # noqa: BLE001 - any reader failure is bad input
+        raise InputError(problem=f"cannot read the file: {str(exc).splitlines()[0] if str(exc) else type(exc).__name__}",
+                         file=str(p), fix="check that it is a valid CSV or Parquet file") from None
+    return check_spend(table, str(p))
 
 
 def check_spend(df: pd.DataFrame, label: str, campaigns: list[str] | None = None) -> pd.DataFrame:
@@ -32,12 +43,12 @@ def check_spend(df: pd.DataFrame, label: str, campaigns: list[str] | None = None
         if col not in df.columns:
             continue
         v = pd.to_numeric(df[col], errors="coerce")
-        bad = (v.isna() & df[col].notna()) | (v < 0) | (col == "spend") & v.isna()
+        bad = (v.isna() & df[col].notna()) | (v < 0) | (col == "spend") & v.isna() | np.isinf(v)
         if bad.any():
             idx = np.flatnonzero(bad.to_numpy())
-            raise InputError(problem=f"{len(idx)} value(s) are not non-negative numbers", file=label, column=col,
+            raise InputError(problem=f"{len(idx)} value(s) are not finite non-negative numbers", file=label, column=col,
                              rows=[BadRow(int(i) + 1, repr(df[col].iloc[i])) for i in idx[:5]], n_bad=len(idx),
-                             fix=f"write {col} as a plain number >= 0")
+                             fix=f"write {col} as a plain finite number >= 0")
         df[col] = v
     dup = df["campaign"].duplicated(keep=False).to_numpy()
     if dup.any():

@@ -266,3 +266,31 @@ def test_prepare_out_names_and_pairs(tmp_path):
     for v in ("v1", "v2"):
         assert subprocess.run(base + ["--out", str(tmp_path / f"counts.{v}.parquet")], capture_output=True).returncode == 0
     assert (tmp_path / "counts.v1.summary.json").is_file() and (tmp_path / "counts.v2.summary.json").is_file()
+
+
+@pytest.mark.parametrize("damage", ["fit.json", "summary.csv", "posterior.nc", "no posterior.nc", "estimands.nc"])
+def test_a_damaged_fit_folder_is_bad_input_naming_the_file(tmp_path, damage):
+    import shutil
+
+    from liftpool.data_prep.shapes import SHAPES, shape_counts
+    from liftpool.models import ModelSettings, fit_counts, load_fit
+
+    counts, _ = shape_counts(SHAPES["few_cells"], 1)
+    good = fit_counts(counts, ModelSettings(), quick=True).save(tmp_path / "fit")
+    bad = tmp_path / "bad"
+    shutil.copytree(good, bad)
+    name = damage.replace("no ", "")
+    target = bad / name
+    if damage.startswith("no "):
+        target.unlink()
+    elif name.endswith(".nc"):
+        b = bytearray(target.read_bytes())
+        mid = len(b) // 2
+        b[mid:mid + 4096] = bytes(x ^ 0xFF for x in b[mid:mid + 4096])  # 4 KB of flipped bytes
+        target.write_bytes(bytes(b))
+    else:
+        target.write_text("{broken")
+    with pytest.raises(InputError) as e:
+        load_fit(bad)
+    assert e.value.file == str(target) and "the fit's file is missing or damaged" in e.value.problem
+    assert e.value.fix == "fit again into a new folder (an earlier fit is never changed by liftpool)"

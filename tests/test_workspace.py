@@ -87,12 +87,21 @@ def test_refit_cycle_end_to_end(tmp_path, data):
     assert h.returncode == 0 and "001-quick" in h.stdout and "002-quick" in h.stdout
     hist = Workspace.open(ws).history()
     assert list(hist["placebo pairs"]) == [hist["placebo pairs"][0], hist["placebo pairs"][0] + 2]
+    assert list(hist["converged"]) == ["n/a (quick)", "n/a (quick)"]  # no sampler, nothing to converge
     c = run("compare", ws, "1", "2")
     assert c.returncode == 0, c.stderr
     assert (ws / "reports" / "compare-001-quick-vs-002-quick" / "compare.png").is_file()
     assert "(pooled bias mean, log odds)" in c.stdout
     # the first fit is untouched, byte for byte
     assert snapshot(ws / "fits" / "001-quick") == first
+    # one damaged manifest does not hide the other fits
+    import shutil
+
+    shutil.copytree(ws / "fits" / "002-quick", ws / "fits" / "003-quick")
+    (ws / "fits" / "003-quick" / "manifest.json").write_text("{")
+    h = run("history", ws)
+    assert h.returncode == 0 and "001-quick" in h.stdout and "damaged" in h.stdout
+    shutil.rmtree(ws / "fits" / "003-quick")
 
 
 def test_add_placebo_equals_preparing_from_scratch(tmp_path, data):
