@@ -21,6 +21,7 @@ import datetime as _dt
 import fcntl
 import json
 import os
+import re
 import shutil
 import tomllib
 from collections.abc import Callable, Iterator
@@ -64,6 +65,15 @@ def _now() -> str:
 
 def _as_list(v) -> list[str]:
     return [str(x) for x in v] if isinstance(v, list) else [str(v)]
+
+
+def _private(folder: Path) -> None:
+    """Owner-only permissions on a folder and everything in it (0700 folders, 0600 files)."""
+    if not folder.is_dir():
+        return
+    os.chmod(folder, 0o700)
+    for p in folder.rglob("*"):
+        os.chmod(p, 0o700 if p.is_dir() else 0o600)
 
 
 def _pid_alive(pid: int) -> bool:
@@ -274,7 +284,12 @@ class Workspace:
         cur = self.path / "prepared" / "CURRENT"
         if not cur.is_file():
             return None
-        gen = self.path / "prepared" / cur.read_text().strip()
+        name = cur.read_text().strip()
+        if not re.fullmatch(r"gen-\d{3,}", name):  # never a path: "../x" must not read outside the workspace
+            raise InputError(problem=f"prepared/CURRENT names {name[:60]!r}, not a preparation (gen-NNN)",
+                             file=str(cur), fix=f"write the name of a folder in {self.path / 'prepared'} into it, "
+                                                f"or run 'liftpool prepare {self.path}' again")
+        gen = self.path / "prepared" / name
         return gen if gen.is_dir() else None
 
     def counts(self) -> pd.DataFrame:
@@ -298,6 +313,7 @@ class Workspace:
         name = f"gen-{1 + max(nums, default=0):03d}"
         with atomic_folder(prepared / name) as tmp:
             build(tmp)
+            _private(tmp / "cache")  # the exposure cache holds user ids: owner only
         return name
 
     def _switch(self, name: str) -> Path:

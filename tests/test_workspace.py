@@ -250,3 +250,27 @@ os._exit(0)
         assert "test, process" in lock.read_text()
     time.sleep(0.2)
     assert not Path(f"/proc/{orphan}").exists() or "Z" in Path(f"/proc/{orphan}/stat").read_text().split()[2]
+
+
+def test_current_must_name_a_preparation(tmp_path, data):
+    from liftpool.data_prep.errors import InputError
+
+    ws = Workspace.init(tmp_path / "w", data["impressions"], [data["conversions"]], [data["outcomes"]])
+    (tmp_path / "w" / "prepared").mkdir(exist_ok=True)
+    (tmp_path / "w" / "prepared" / "CURRENT").write_text("../../../base\n")
+    with pytest.raises(InputError) as e:
+        ws.counts()
+    assert e.value.problem == "prepared/CURRENT names '../../../base', not a preparation (gen-NNN)"
+
+
+def test_the_exposure_cache_is_private(tmp_path, data):
+    # it holds user ids (docs/workspace.md): owner-only, whatever the umask
+    import stat
+
+    ws = Workspace.init(tmp_path / "w", data["impressions"], [data["conversions"]], [data["outcomes"]])
+    ws.prepare()
+    cache = ws.current() / "cache"
+    assert cache.is_dir()
+    assert stat.S_IMODE(cache.stat().st_mode) == 0o700
+    files = [p for p in cache.rglob("*") if p.is_file()]
+    assert files and all(stat.S_IMODE(p.stat().st_mode) == 0o600 for p in files)
