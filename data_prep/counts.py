@@ -38,6 +38,9 @@ __all__ = [
 
 COUNTS_COLUMNS = ["campaign", "cell", "arm", "outcome", "role", "users", "conversions"]
 ARMS = ("seen", "unseen", "unexposed")
+#: The largest users or conversions count of one row: ten billion (more than the world's population;
+#: beyond it a value is an export error, and 64-bit sums stay exact).
+MAX_COUNT = 1e10
 #: Campaign names the reports use for their pooled rows (models/summary.py takes them from here).
 RESERVED_CAMPAIGNS = ("(portfolio)", "(new campaign)")
 ROLES = ("target", "placebo")
@@ -293,6 +296,11 @@ def validate_counts(df: pd.DataFrame, label: str = "counts table") -> pd.DataFra
             raise InputError(problem=f"{int(frac.sum())} value(s) are not whole numbers", file=label, column=col,
                              rows=bad_rows(frac, col), n_bad=int(frac.sum()),
                              fix=f"{col} counts users: write whole numbers")
+        huge = v > MAX_COUNT
+        if huge.any():
+            raise InputError(problem=f"{int(huge.sum())} value(s) above {MAX_COUNT:,.0f}, more than any audience",
+                             file=label, column=col, rows=bad_rows(huge, col), n_bad=int(huge.sum()),
+                             fix=f"check the {col} column (a unit or an export error)")
         df[col] = v.astype("int64")
     over = (df["conversions"] > df["users"]).to_numpy()
     if over.any():
@@ -324,6 +332,13 @@ def validate_counts(df: pd.DataFrame, label: str = "counts table") -> pd.DataFra
             mask = ((df["campaign"] == c) & (df["role"] == "target")).to_numpy() if n else (df["campaign"] == c).to_numpy()
             raise InputError(problem=f"campaign '{c}' has {n} target outcomes", file=label, column="role",
                              rows=bad_rows(mask, "outcome"), fix="give each campaign exactly one target outcome")
+    # a table without a single target conversion measures nothing
+    tgt_conv = df.loc[df["role"] == "target", "conversions"].sum()
+    if tgt_conv == 0:
+        raise InputError(problem="the table has no target conversions at all (every target row has 0)",
+                         file=label, column="conversions",
+                         fix="check the conversion window and the target outcome names; a lift cannot be "
+                             "measured without conversions")
     # names the reports use for their pooled rows cannot be campaigns
     reserved = df["campaign"].isin(RESERVED_CAMPAIGNS).to_numpy()
     if reserved.any():

@@ -288,7 +288,8 @@ def _modes(cells: CellTable, idx: np.ndarray, n_pairs: int, penalized: bool,
     _, _, h = _pair_sums(cells, idx, psi[:, None], n_pairs)
     info = -h[:, 0]
     far = np.abs(psi) > 40
-    psi = np.where(far, np.sign(psi) * np.inf, psi)
+    with np.errstate(invalid="ignore"):  # sign(nan) * inf for a pair without information: still nan
+        psi = np.where(far, np.sign(psi) * np.inf, psi)
     return psi, np.where(far, 0.0, info)
 
 

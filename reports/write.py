@@ -104,6 +104,22 @@ def write_xlsx(tables: dict[str, pd.DataFrame], path: Path, level: float = 0.9, 
     wb.save(path)
 
 
+def _check_prep_summary(prep: PrepSummary, campaigns: list[str]) -> None:
+    """The prep summary must be one, and of these counts: every fitted campaign in it."""
+    c = prep.campaigns
+    need = ("campaign", "nonviewable_share")
+    if c.empty or any(k not in c.columns for k in need):
+        raise InputError(problem="not a prep summary: it has no per-campaign table with campaign and "
+                                 "nonviewable_share", file="--prep-summary",
+                         fix="give the <name>.summary.json that 'liftpool prepare' wrote beside the counts")
+    missing = sorted(set(campaigns) - set(c["campaign"].astype(str)))
+    if missing:
+        shown = ", ".join(repr(m) for m in missing[:5]) + (" ..." if len(missing) > 5 else "")
+        raise InputError(problem=f"the prep summary is of other data: {len(missing)} fitted campaign(s) are not in "
+                                 f"it ({shown})", file="--prep-summary",
+                         fix="give the summary written with the counts this fit used")
+
+
 def write_report(
     fit: FitResult | str | os.PathLike,
     out: str | os.PathLike,
@@ -144,6 +160,8 @@ def write_report(
         raise InputError(problem="the folder already holds files; a report is never written over another",
                          file=str(out), fix="choose a new --out folder")
     camps = [str(c) for c in fit.idata.posterior.campaign.values]
+    if prep_summary is not None:
+        _check_prep_summary(prep_summary, camps)
     if spend is not None:
         spend = check_spend(spend, "spend table", campaigns=camps)
     prov = dict(provenance or {})

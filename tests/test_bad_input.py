@@ -134,6 +134,7 @@ COUNTS = pd.DataFrame({"campaign": ["C"] * 4, "cell": ["all"] * 4, "arm": ["seen
         (lambda d: d.drop(columns="users"), "users", "missing"),
         (lambda d: d.assign(users=["100", "x", "50", "50"]), "users", "not numbers"),
         (lambda d: d.assign(campaign="(portfolio)"), "campaign", "reserved campaign name"),
+        (lambda d: d.assign(users=[1e19, 100, 50, 50]), "users", "above 10,000,000,000, more than any audience"),
         (lambda d: d.assign(campaign="(new campaign)"), "campaign", "reserved campaign name"),
         (lambda d: d.assign(arm=["unseen"] * 4).drop_duplicates(["outcome"]), "arm",
          "campaign 'C' has no seen users for its target outcome"),
@@ -294,3 +295,28 @@ def test_a_damaged_fit_folder_is_bad_input_naming_the_file(tmp_path, damage):
         load_fit(bad)
     assert e.value.file == str(target) and "the fit's file is missing or damaged" in e.value.problem
     assert e.value.fix == "fit again into a new folder (an earlier fit is never changed by liftpool)"
+
+
+def test_all_zero_target_conversions_exact_message():
+    with pytest.raises(InputError) as e:
+        validate_counts(COUNTS.assign(conversions=[0, 3, 0, 1]), "counts.csv")
+    assert e.value.problem == "the table has no target conversions at all (every target row has 0)"
+    assert e.value.column == "conversions"
+
+
+def test_prep_summary_must_be_one_and_of_these_counts(tmp_path):
+    from liftpool.data_prep import PrepSummary
+    from liftpool.data_prep.shapes import SHAPES, shape_counts
+    from liftpool.models import ModelSettings, fit_counts
+    from liftpool.reports import write_report
+
+    counts, _ = shape_counts(SHAPES["few_cells"], 1)
+    fit = fit_counts(counts, ModelSettings(), quick=True)
+    with pytest.raises(InputError) as e:
+        write_report(fit, tmp_path / "r1", prep_summary=PrepSummary.from_dict({}))
+    assert e.value.problem.startswith("not a prep summary")
+    other = PrepSummary.from_dict({"campaigns": [{"campaign": "elsewhere", "nonviewable_share": 0.5}]})
+    with pytest.raises(InputError) as e:
+        write_report(fit, tmp_path / "r2", prep_summary=other)
+    assert e.value.problem.startswith("the prep summary is of other data: 8 fitted campaign(s) are not in it")
+    assert not (tmp_path / "r1").exists() and not (tmp_path / "r2").exists()
