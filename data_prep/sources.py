@@ -207,6 +207,26 @@ def _literal_path(path: Path) -> Path:
     return _LINKS[key]
 
 
+def _check_csv_header(path: Path) -> None:
+    """A header that names a column twice is refused (a reader would silently rename one of them)."""
+    import csv
+
+    try:
+        with open(path, newline="", encoding="utf-8-sig") as fh:
+            header = next(csv.reader(fh), [])
+    except UnicodeDecodeError as exc:
+        raise InputError(problem=f"the file is not UTF-8 text (byte {exc.start} of the header)", file=str(path),
+                         fix="save the file as UTF-8 CSV (or Parquet)") from None
+    seen, dup = set(), []
+    for name in (h.strip() for h in header):
+        if name in seen and name not in dup:
+            dup.append(name)
+        seen.add(name)
+    if dup:
+        raise InputError(problem=f"the header names {', '.join(repr(d) for d in dup)} more than once", file=str(path),
+                         column=dup[0], fix="give each column one name; drop or rename the repeated column")
+
+
 def _load(con: duckdb.DuckDBPyConnection, kind: str, source) -> Table:
     from liftpool.data_prep.engine_spark import is_spark
 
@@ -231,6 +251,8 @@ def _load(con: duckdb.DuckDBPyConnection, kind: str, source) -> Table:
             if path.stat().st_size == 0:
                 raise InputError(problem="the file is empty", file=str(path),
                                  fix=f"export the {kind} table again; it needs a header and data rows")
+            if fmt == "csv":
+                _check_csv_header(path)
         p = "[" + ", ".join(_lit(str(_literal_path(x))) for x in paths) + "]"
         reader = (f"read_csv({p}, header = true, all_varchar = true, union_by_name = true)" if fmt == "csv"
                   else f"read_parquet({p}, union_by_name = true)")

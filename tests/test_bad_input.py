@@ -320,3 +320,17 @@ def test_prep_summary_must_be_one_and_of_these_counts(tmp_path):
         write_report(fit, tmp_path / "r2", prep_summary=other)
     assert e.value.problem.startswith("the prep summary is of other data: 8 fitted campaign(s) are not in it")
     assert not (tmp_path / "r1").exists() and not (tmp_path / "r2").exists()
+
+
+def test_a_header_naming_a_column_twice_is_refused(tmp_path):
+    from liftpool.data_prep import write_scenario
+
+    p = write_scenario(tmp_path / "in", seed=3, scale=0.05, fmt="csv")
+    text = p["impressions"].read_text().splitlines()
+    head = text[0].split(",")
+    text[0] = ",".join(head[:-1] + [head[0]])  # the last column renamed to the first's name
+    bad = tmp_path / "dup.csv"
+    bad.write_text("\n".join(text) + "\n")
+    with pytest.raises(InputError) as e:
+        prepare_counts(bad, p["conversions"], p["outcomes"])
+    assert e.value.problem == f"the header names {head[0]!r} more than once" and e.value.file == str(bad)
