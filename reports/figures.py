@@ -21,6 +21,11 @@ __all__ = ["make_figures", "new_figure", "png_bytes", "plain_text"]
 STYLE = {"font.size": 9, "axes.edgecolor": "black", "axes.grid": True, "grid.color": "0.88",
          "grid.linewidth": 0.6, "axes.spines.top": False, "axes.spines.right": False, "savefig.dpi": 130,
          "font.family": "DejaVu Sans"}
+#: Rows a figure shows at most; beyond it the largest are shown and the title says how many of how many
+#: (the tables keep every row). A 300-campaign report stays readable and small.
+MAX_ROWS = 30
+#: Campaigns whose names label the shrinkage and naive-to-corrected figures at most.
+MAX_LABELS = 15
 MARK = {"naive": ("D", "0.65", "naive (served vs not)"), "uncorrected": ("s", "0.4", "uncorrected (cells)"),
         "corrected": ("o", "black", "bias-corrected")}
 
@@ -60,8 +65,18 @@ def _row_label(r: dict) -> str:
     return _plain(r["campaign"]) if r["row"] == "campaign" else KIND_OF_ROW[r["row"]]
 
 
+def _biggest(rows: list[dict], key: str, n: int) -> list[dict]:
+    """The ``n`` rows largest in ``key`` (keeping their order); all when there are at most ``n``."""
+    if len(rows) <= n:
+        return rows
+    keep = set(np.argsort([-(r.get(key) or 0) for r in rows], kind="stable")[:n])
+    return [r for i, r in enumerate(rows) if i in keep]
+
+
 def _lift_figure(t: ReportTables) -> bytes:
-    res = [r for r in t.results.to_dict(orient="records") if r["row"] != "new campaign"]
+    camps = [r for r in t.results.to_dict(orient="records") if r["row"] == "campaign"]
+    shown = _biggest(camps, "users_seen", MAX_ROWS)
+    res = shown + [r for r in t.results.to_dict(orient="records") if r["row"] == "portfolio"]
     fig, ax = _subplots((7.2, 0.42 * len(res) + 1.3))
     y = np.arange(len(res))[::-1]
     xmax = 0.0
@@ -88,7 +103,8 @@ def _lift_figure(t: ReportTables) -> bytes:
     ax.set_xticks(ticks, [f"{v:+.0%}" for v in ticks])
     ax.set_xlabel(f"lift among seen users (median and {t.level:.0%} interval; scale compressed above +100%)")
     ax.legend(loc="lower right", fontsize=8, frameon=True)
-    ax.set_title("Lift by campaign: naive, uncorrected and bias-corrected")
+    more = f" ({len(shown)} largest of {len(camps)} campaigns; the table lists all)" if len(shown) < len(camps) else ""
+    ax.set_title("Lift by campaign: naive, uncorrected and bias-corrected" + more)
     return _png(fig)
 
 
@@ -96,6 +112,10 @@ def _placebo_figure(t: ReportTables) -> bytes | None:
     p = t.placebos
     if p.empty:
         return None
+    n_all = len(p)
+    if n_all > MAX_ROWS:  # the placebos that reveal the most bias
+        p = p.loc[p["before correction, median (log odds)"].abs().sort_values(ascending=False).index[:MAX_ROWS]]
+        p = p.sort_index().reset_index(drop=True)
     L = int(round(t.level * 100))
     fig, ax = _subplots((7.2, 0.36 * len(p) + 1.2))
     y = np.arange(len(p))[::-1]
@@ -109,7 +129,8 @@ def _placebo_figure(t: ReportTables) -> bytes | None:
     ax.axvline(0, color="black", linewidth=0.8, linestyle="--")
     ax.set_yticks(y, [_plain(f"{c} | {o}") for c, o in zip(p["campaign"], p["placebo outcome"], strict=True)])
     ax.set_xlabel(f"seen-vs-unseen effect on the placebo outcome, log odds ({L}% interval); 0 = no bias")
-    ax.set_title("Placebo check: bias before and after the correction")
+    more = (f" ({len(p)} with the largest bias of {n_all}; the appendix lists all)" if len(p) < n_all else "")
+    ax.set_title("Placebo check: bias before and after the correction" + more)
     ax.legend(loc="best", fontsize=8)
     return _png(fig)
 
@@ -123,8 +144,11 @@ def _shrinkage_figure(t: ReportTables) -> bytes:
                 fmt="none", ecolor="0.6", linewidth=1)
     ax.scatter(s["alone (log odds)"], s["pooled, median (log odds)"], s=size, facecolor="white", edgecolor="black",
                zorder=3)
-    for name, xa, ya in zip(s["campaign"], s["alone (log odds)"], s["pooled, median (log odds)"], strict=True):
-        ax.annotate(_plain(name), (xa, ya), fontsize=7, xytext=(4, 4), textcoords="offset points")
+    named = set(s["target conversions"].sort_values(ascending=False).index[:MAX_LABELS])
+    for i, (name, xa, ya) in enumerate(zip(s["campaign"], s["alone (log odds)"], s["pooled, median (log odds)"],
+                                           strict=True)):
+        if s.index[i] in named:
+            ax.annotate(_plain(name), (xa, ya), fontsize=7, xytext=(4, 4), textcoords="offset points")
     lim = [min(s["alone (log odds)"].min(), s["pooled lower"].min()) - 0.05,
            max(s["alone (log odds)"].max(), s["pooled upper"].max()) + 0.05]
     ax.plot(lim, lim, ":", color="black", linewidth=1, label="no pooling (pooled = alone)")
@@ -137,6 +161,8 @@ def _shrinkage_figure(t: ReportTables) -> bytes:
 
 def _steps_figure(t: ReportTables) -> bytes:
     c = t.campaigns
+    if len(c) > MAX_LABELS:  # the largest campaigns: more lines would only tangle
+        c = c.loc[c["users_seen"].astype(float).sort_values(ascending=False).index[:MAX_LABELS]].reset_index(drop=True)
     cols = [("lift_naive", "naive"), ("lift_uncorrected", "uncorrected"), ("lift", "bias-corrected")]
     cols = [(k, lab) for k, lab in cols if k in c.columns and c[k].notna().any()]
     fig, ax = _subplots((6.4, 4.2))
@@ -154,7 +180,9 @@ def _steps_figure(t: ReportTables) -> bytes:
     ticks = [v for v in (0, 0.1, 0.25, 0.5, 1, 2, 5) if v <= max(1.0, float(c[[k for k, _ in cols]].max().max()) * 1.2)]
     ax.set_yticks(ticks, [f"{v:+.0%}" for v in ticks])
     ax.set_ylabel("lift (median)")
-    ax.set_title("From naive to bias-corrected, per campaign")
+    n_all = len(t.campaigns)
+    ax.set_title("From naive to bias-corrected, per campaign"
+                 + (f" ({len(c)} largest of {n_all})" if len(c) < n_all else ""))
     ax.set_xlim(-0.2, len(cols) - 1 + 0.9)
     return _png(fig)
 
@@ -165,6 +193,9 @@ def _roas_figure(t: ReportTables) -> bytes | None:
     res = [r for r in t.results.to_dict(orient="records") if np.isfinite(r.get("return_on_ad_spend", np.nan))]
     if not res:
         return None
+    camps = [r for r in res if r["row"] == "campaign"]
+    shown = _biggest(camps, "spend", MAX_ROWS)
+    res = shown + [r for r in res if r["row"] != "campaign"]
     fig, ax = _subplots((7.2, 0.42 * len(res) + 1.3))
     y = np.arange(len(res))[::-1]
     for yi, r in zip(y, res, strict=True):
@@ -177,7 +208,8 @@ def _roas_figure(t: ReportTables) -> bytes | None:
     ax.set_yticks(y, [_row_label(r) for r in res])
     ax.set_xlabel(f"return on ad spend: incremental revenue / spend (median and {t.level:.0%} interval); "
                   "1 = break-even")
-    ax.set_title("Did it pay for itself? Posterior of return on ad spend")
+    ax.set_title("Did it pay for itself? Posterior of return on ad spend"
+                 + (f" ({len(shown)} largest spends of {len(camps)})" if len(shown) < len(camps) else ""))
     return _png(fig)
 
 

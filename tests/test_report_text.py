@@ -213,3 +213,24 @@ def test_formula_and_mathtext_names_are_inert(tmp_path):
     assert "'=1+1" in text and "'+cmd" in text and "\n=1+1" not in text
     placebo = (out / "placebo_check.csv").read_text()
     assert "'@SUM(A1)" in placebo
+
+
+@pytest.mark.slow
+def test_a_300_campaign_report_stays_readable_and_small(tmp_path):
+    # invented counts (the shape suite's story): every figure capped at MAX_ROWS rows, the page < 3 MB
+    from PIL import Image
+
+    from liftpool.data_prep.shapes import Shape, shape_counts
+    from liftpool.reports.figures import MAX_ROWS
+
+    sh = Shape("big", campaigns=300, cells=(20, 20), placebos=3, users=(6000, 6000), rate=(0.02, 0.04))
+    counts, _ = shape_counts(sh, 1)
+    fit = fit_counts(counts, ModelSettings(), quick=True)
+    spend = pd.DataFrame({"campaign": sorted(counts.campaign.unique()), "spend": 1000.0, "value_per_conversion": 20.0})
+    out = write_report(fit, tmp_path / "r", spend=spend)
+    assert (out / "report.html").stat().st_size < 3e6
+    for png in (out / "figures").iterdir():
+        w, h = Image.open(png).size
+        assert h < 0.42 * (MAX_ROWS + 2) * 130 + 400, (png.name, h)  # inches x dpi, with the margins
+    csv = pd.read_csv(out / "campaign_results.csv")
+    assert (csv["row"] == "campaign").sum() == 300  # the tables keep every campaign
