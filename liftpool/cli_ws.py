@@ -105,16 +105,21 @@ def cmd_history(args, console) -> int:
 
 
 def cmd_compare(args, console) -> int:
-    from liftpool.data_prep.io import spreadsheet_safe, write_table
+    from liftpool.data_prep.io import atomic_folder, spreadsheet_safe, write_table
     from liftpool.workspace import Workspace
 
     ws = Workspace.open(args.workspace)
     a, b = ws.resolve_fit(args.a), ws.resolve_fit(args.b)
     table, png = ws.compare(a, b)
-    out = ws.path / "reports" / f"compare-{a}-vs-{b}"
-    out.mkdir(parents=True, exist_ok=True)
-    write_table(spreadsheet_safe(table), out / "compare.csv")
-    (out / "compare.png").write_bytes(png)
+    # a new folder each time, written whole or not at all (never over an earlier comparison)
+    base = ws.path / "reports" / f"compare-{a}-vs-{b}"
+    out, n = base, 2
+    while out.exists():
+        out = base.with_name(f"{base.name}.{n}")
+        n += 1
+    with atomic_folder(out) as tmp:
+        write_table(spreadsheet_safe(table), tmp / "compare.csv")
+        (tmp / "compare.png").write_bytes(png)
     cols = ["campaign", f"lift median ({a})", f"lift median ({b})", "change in lift median",
             "change in interval width", f"bias median, log odds ({a})", f"bias median, log odds ({b})"]
     fmt = table[[c for c in cols if c in table.columns]].copy()
