@@ -6,7 +6,7 @@ import numpy as np
 import pandas as pd
 
 from liftpool.models.fit import FitResult
-from liftpool.reports.figures import STYLE, _png
+from liftpool.reports.figures import STYLE, png_bytes
 
 __all__ = ["compare_fits"]
 
@@ -61,5 +61,5 @@ def compare_fits(a: FitResult, b: FitResult, name_a: str, name_b: str) -> tuple[
         ax1.legend(fontsize=8, loc="lower right")
         ax2.set_xlabel("bias on the target (log odds)")
         ax1.set_title(f"How the estimates moved: fit {name_a} to fit {name_b}", loc="left")
-        png = _png(fig)
+        png = png_bytes(fig)
     return table, png

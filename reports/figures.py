@@ -38,16 +38,8 @@ def new_figure(figsize, **subplots):
     return fig, fig.subplots(**subplots)
 
 
-def _subplots(figsize):
-    return new_figure(figsize)
-
-
 def png_bytes(fig) -> bytes:
     """The figure as PNG bytes."""
-    return _png(fig)
-
-
-def _png(fig) -> bytes:
     buf = io.BytesIO()
     fig.savefig(buf, format="png", bbox_inches="tight")
     return buf.getvalue()
@@ -77,7 +69,7 @@ def _lift_figure(t: ReportTables) -> bytes:
     camps = [r for r in t.results.to_dict(orient="records") if r["row"] == "campaign"]
     shown = _biggest(camps, "users_seen", MAX_ROWS)
     res = shown + [r for r in t.results.to_dict(orient="records") if r["row"] == "portfolio"]
-    fig, ax = _subplots((7.2, 0.42 * len(res) + 1.3))
+    fig, ax = new_figure((7.2, 0.42 * len(res) + 1.3))
     y = np.arange(len(res))[::-1]
     xmax = 0.0
     for j, key in enumerate(("naive", "uncorrected", "corrected")):
@@ -105,7 +97,7 @@ def _lift_figure(t: ReportTables) -> bytes:
     ax.legend(loc="lower right", fontsize=8, frameon=True)
     more = f" ({len(shown)} largest of {len(camps)} campaigns; the table lists all)" if len(shown) < len(camps) else ""
     ax.set_title("Lift by campaign: naive, uncorrected and bias-corrected" + more)
-    return _png(fig)
+    return png_bytes(fig)
 
 
 def _placebo_figure(t: ReportTables) -> bytes | None:
@@ -117,7 +109,7 @@ def _placebo_figure(t: ReportTables) -> bytes | None:
         p = p.loc[p["before correction, median (log odds)"].abs().sort_values(ascending=False).index[:MAX_ROWS]]
         p = p.sort_index().reset_index(drop=True)
     L = int(round(t.level * 100))
-    fig, ax = _subplots((7.2, 0.36 * len(p) + 1.2))
+    fig, ax = new_figure((7.2, 0.36 * len(p) + 1.2))
     y = np.arange(len(p))[::-1]
     for (col, lo, hi), m, color, off, label in (
             (("before correction, median (log odds)", f"before, {L}% lower", f"before, {L}% upper"), "s", "0.45", 0.15,
@@ -132,12 +124,12 @@ def _placebo_figure(t: ReportTables) -> bytes | None:
     more = (f" ({len(p)} with the largest bias of {n_all}; the appendix lists all)" if len(p) < n_all else "")
     ax.set_title("Placebo check: bias before and after the correction" + more)
     ax.legend(loc="best", fontsize=8)
-    return _png(fig)
+    return png_bytes(fig)
 
 
 def _shrinkage_figure(t: ReportTables) -> bytes:
     s = t.shrinkage
-    fig, ax = _subplots((5.6, 4.4))
+    fig, ax = new_figure((5.6, 4.4))
     size = 20 + 300 * np.sqrt(s["target conversions"] / max(1, s["target conversions"].max()))
     ax.errorbar(s["alone (log odds)"], s["pooled, median (log odds)"],
                 yerr=[s["pooled, median (log odds)"] - s["pooled lower"], s["pooled upper"] - s["pooled, median (log odds)"]],
@@ -156,7 +148,7 @@ def _shrinkage_figure(t: ReportTables) -> bytes:
     ax.set_ylabel("pooled estimate (median, log odds)")
     ax.set_title("Shrinkage: small campaigns borrow strength\n(circle area ~ target conversions)")
     ax.legend(loc="upper left", fontsize=8)
-    return _png(fig)
+    return png_bytes(fig)
 
 
 def _steps_figure(t: ReportTables) -> bytes:
@@ -165,7 +157,7 @@ def _steps_figure(t: ReportTables) -> bytes:
         c = c.loc[c["users_seen"].astype(float).sort_values(ascending=False).index[:MAX_LABELS]].reset_index(drop=True)
     cols = [("lift_naive", "naive"), ("lift_uncorrected", "uncorrected"), ("lift", "bias-corrected")]
     cols = [(k, lab) for k, lab in cols if k in c.columns and c[k].notna().any()]
-    fig, ax = _subplots((6.4, 4.2))
+    fig, ax = new_figure((6.4, 4.2))
     x = np.arange(len(cols))
     styles = ["-", "--", "-.", ":"]
     for i, name in enumerate(c["campaign"]):
@@ -184,7 +176,7 @@ def _steps_figure(t: ReportTables) -> bytes:
     ax.set_title("From naive to bias-corrected, per campaign"
                  + (f" ({len(c)} largest of {n_all})" if len(c) < n_all else ""))
     ax.set_xlim(-0.2, len(cols) - 1 + 0.9)
-    return _png(fig)
+    return png_bytes(fig)
 
 
 def _roas_figure(t: ReportTables) -> bytes | None:
@@ -196,7 +188,7 @@ def _roas_figure(t: ReportTables) -> bytes | None:
     camps = [r for r in res if r["row"] == "campaign"]
     shown = _biggest(camps, "spend", MAX_ROWS)
     res = shown + [r for r in res if r["row"] != "campaign"]
-    fig, ax = _subplots((7.2, 0.42 * len(res) + 1.3))
+    fig, ax = new_figure((7.2, 0.42 * len(res) + 1.3))
     y = np.arange(len(res))[::-1]
     for yi, r in zip(y, res, strict=True):
         lo, hi = r["return_on_ad_spend_lower"], r["return_on_ad_spend_upper"]
@@ -210,7 +202,7 @@ def _roas_figure(t: ReportTables) -> bytes | None:
                   "1 = break-even")
     ax.set_title("Did it pay for itself? Posterior of return on ad spend"
                  + (f" ({len(shown)} largest spends of {len(camps)})" if len(shown) < len(camps) else ""))
-    return _png(fig)
+    return png_bytes(fig)
 
 
 def make_figures(t: ReportTables) -> dict[str, bytes]:

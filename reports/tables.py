@@ -143,8 +143,8 @@ def _results(summary: pd.DataFrame, summary50: pd.DataFrame, fit: FitResult, non
     unseen = {c: int(cd["users_unseen"].sel(campaign=c)) for c in camps}
     s = summary.set_index(["campaign", "quantity"])
     s50 = summary50.set_index(["campaign", "quantity"])
-    units = list(dict.fromkeys(summary["campaign"]))
-    units = camps + [u for u in (PORTFOLIO, NEW_CAMPAIGN) if u in units]
+    present = set(summary["campaign"])
+    units = camps + [u for u in (PORTFOLIO, NEW_CAMPAIGN) if u in present]
     rows = []
     for u in units:
         kind = "campaign" if u in camps else ("portfolio" if u == PORTFOLIO else "new campaign")
