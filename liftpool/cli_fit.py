@@ -1,4 +1,4 @@
-"""``liftpool fit``: counts file to a fit folder (posterior.nc, summary.csv, fit.json)."""
+"""``liftpool fit``: counts file to a fit folder (posterior.nc, estimands.nc, summary.csv, fit.json)."""
 
 from __future__ import annotations
 
@@ -87,7 +87,7 @@ def read_groups(path: str | None) -> dict[str, str] | None:
 def register(sub, common) -> None:
     p = sub.add_parser("fit", help="counts to posterior: the hierarchical lift model",
                        description="Fit the bias-corrected, partially pooled lift model to a counts file and write "
-                                   "DIR/posterior.nc, DIR/summary.csv and DIR/fit.json.")
+                                   "DIR/posterior.nc, DIR/estimands.nc, DIR/summary.csv and DIR/fit.json.")
     p.add_argument("workspace", nargs="?", metavar="WS", help="a workspace: fit its current counts into WS/fits/<id>")
     p.add_argument("--counts", help="counts file (.parquet or .csv) from 'liftpool prepare'")
     p.add_argument("--out", help="new folder for the fit (never written over)")

@@ -6,7 +6,7 @@ Layout::
     WS/prepared/CURRENT         name of the current preparation (switched atomically)
     WS/prepared/<gen>/          counts.parquet, counts.summary.json, cache/ (exposure cells: private)
     WS/inputs/                  outcome files added with add-placebo
-    WS/fits/<id>/               posterior.nc, summary.csv, fit.json, manifest.json
+    WS/fits/<id>/               posterior.nc, estimands.nc, summary.csv, fit.json, manifest.json
     WS/reports/<id>/            report.html, tables.xlsx, CSVs, figures/
     WS/.lock                    held while a command works on the workspace
 
