@@ -351,14 +351,56 @@ def _naive_draws(d: Design, n_draws: int, rng: np.random.Generator) -> dict[str,
     return out
 
 
+#: Seconds between the heartbeat lines of a long sampling run without a progress bar.
+HEARTBEAT_SECONDS = 30.0
+
+
+def _heartbeat(s: ModelSettings, say):
+    """A PyMC callback that says how far sampling is, at most every HEARTBEAT_SECONDS (for output to a
+    file, a scheduler or a notebook, where no progress bar shows)."""
+    total = s.chains * (s.tune + s.draws)
+    state = {"n": 0}
+
+    def callback(trace=None, draw=None):
+        state["n"] += 1
+        now = time.perf_counter()
+        if state["n"] == 1:  # the clock starts with the first iteration (after compiling)
+            state["t0"] = state["last"] = now
+            return
+        if now - state["last"] >= HEARTBEAT_SECONDS:
+            state["last"] = now
+            done = state["n"] / total
+            left = (now - state["t0"]) * (1 - done) / max(done, 1e-9)
+            say(f"sampling: {state['n']:,} of {total:,} iterations ({done:.0%}), about {left:,.0f} s left")
+
+    return callback
+
+
+@contextlib.contextmanager
+def _quiet_sampler_log():
+    """PyMC's own lines (the sampler's parameter list, its internals) stay out of the user's output;
+    liftpool says what it does in its own words. Warnings still show."""
+    import logging
+
+    lg = logging.getLogger("pymc")
+    level = lg.level
+    lg.setLevel(logging.WARNING)
+    try:
+        yield
+    finally:
+        lg.setLevel(level)
+
+
 def _run_sampler(model, s: ModelSettings, info: dict, say, progressbar: bool, init: str, **extra) -> az.InferenceData:
     """pm.sample with the settings; a Ctrl-C or a partial trace is never a fit."""
     import pymc as pm
 
     def run(init: str) -> az.InferenceData:
-        with model:
+        with model, _quiet_sampler_log():
             if "step" not in extra:  # a given step carries its own target_accept
                 extra["target_accept"] = s.accept
+            if not progressbar and s.sampler == "pymc":
+                extra["callback"] = _heartbeat(s, say)
             return pm.sample(draws=s.draws, tune=s.tune, chains=s.chains,
                              cores=min(s.chains, default_cores()), random_seed=s.seed,
                              nuts_sampler=s.sampler, init=init,

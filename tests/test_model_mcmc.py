@@ -251,3 +251,23 @@ def test_ess_advice_says_how_many_draws():
     assert f"about --draws {draws_needed(500, bulk.value)} per chain, from the ESS of 500 draws" in bulk.advice
     assert 1_200 <= draws_needed(500, bulk.value) <= 3_500
     assert draws_needed(500, 800.0) == 300 and draws_needed(500, 0.0) == 0
+
+
+def test_sampling_says_how_far_it_is_and_keeps_pymc_internals_out(monkeypatch, caplog):
+    # without a progress bar (output to a file, a scheduler): timestamped lines come from the progress
+    # callback; PyMC's own lines (its parameter list) stay out
+    import logging
+    import warnings
+
+    import liftpool.models.fit as fit_module
+    from liftpool.data_prep.shapes import SHAPES, shape_counts
+
+    monkeypatch.setattr(fit_module, "HEARTBEAT_SECONDS", 0.0)
+    counts, _ = shape_counts(SHAPES["few_cells"], 1)
+    lines = []
+    with caplog.at_level(logging.INFO, logger="pymc"), warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        fit_counts(counts, ModelSettings(draws=100, tune=100, chains=2), progress=lines.append)
+    beats = [ln for ln in lines if " iterations (" in ln]
+    assert beats and beats[-1].startswith("sampling: ") and "of 400 iterations" in beats[-1]
+    assert not [r for r in caplog.records if r.name.startswith("pymc") and "NUTS:" in r.getMessage()]
