@@ -20,7 +20,7 @@ import xarray as xr
 from liftpool.models.summary import NEW_CAMPAIGN, PORTFOLIO, SUMMARY_COLUMNS
 
 __all__ = ["estimand_draws", "add_money", "summarize", "QUANTITIES", "PROBABILITIES", "KINDS",
-           "cost_per_incremental", "placebo_summary", "shrinkage_summary"]
+           "cost_per_incremental", "placebo_summary", "shrinkage_summary", "interval"]
 
 #: The kinds of unit, in the order the units are listed.
 KINDS = ("campaign", "portfolio", "new campaign")
@@ -225,7 +225,8 @@ def summarize(ds: xr.Dataset, level: float) -> pd.DataFrame:
     return pd.DataFrame(rows, columns=SUMMARY_COLUMNS)
 
 
-def _interval(draws: np.ndarray, level: float) -> tuple[float, float]:
+def interval(draws: np.ndarray, level: float) -> tuple[float, float]:
+    """Equal-tailed interval of draws at ``level``."""
     a = (1 - level) / 2
     lo, hi = np.quantile(np.asarray(draws, dtype=float).ravel(), [a, 1 - a])
     return float(lo), float(hi)
@@ -252,8 +253,8 @@ def placebo_summary(idata, level: float) -> pd.DataFrame:
             before = rng.normal(est, se, 4000)
             bm = post["bias_mean"].values.ravel() if "bias_mean" in post else np.zeros(1)
             after = before - rng.choice(bm, 4000)
-        blo, bhi = _interval(before, level)
-        alo, ahi = _interval(after, level)
+        blo, bhi = interval(before, level)
+        alo, ahi = interval(after, level)
         rows.append({"campaign": camp, "placebo outcome": outcome, "pair": pair,
                      "before correction, median (log odds)": float(np.median(before)),
                      f"before, {L}% lower": blo, f"before, {L}% upper": bhi,
@@ -277,7 +278,7 @@ def shrinkage_summary(idata, level: float) -> pd.DataFrame:
         pl = e[e.role == "placebo"]
         b, bse = (float(pl.estimate.mean()), float(np.sqrt((pl.se**2).sum()) / len(pl))) if len(pl) else (pooled_bias, 0.0)
         pooled = post["lift_logodds"].sel(campaign=c).values.ravel()
-        lo, hi = _interval(pooled, level)
+        lo, hi = interval(pooled, level)
         rows.append({"campaign": c, "alone (log odds)": float(t.estimate - b),
                      "alone standard error": float(np.hypot(t.se, bse)),
                      "pooled, median (log odds)": float(np.median(pooled)), "pooled lower": lo, "pooled upper": hi,

@@ -535,12 +535,12 @@ def _seeded_step(model, qcore: dict, s: ModelSettings):
         else:
             cols.append(None)
             mean.append(np.ravel(point[value.name]))
-    n = sum(m.size for m in mean)
+    start = np.cumsum([0] + [m.size for m in mean])  # each variable's slice of the flat vector
+    n = int(start[-1])
     cov = np.eye(n)
     known = [i for i, c in enumerate(cols) if c is not None]
     if known:
-        idx = np.concatenate([np.arange(sum(m.size for m in mean[:i]), sum(m.size for m in mean[:i + 1]))
-                              for i in known])
+        idx = np.concatenate([np.arange(start[i], start[i + 1]) for i in known])
         block = np.atleast_2d(np.cov(np.concatenate([cols[i] for i in known], axis=1), rowvar=False))
         block += np.eye(len(idx)) * 1e-8
         cov[np.ix_(idx, idx)] = block

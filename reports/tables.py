@@ -20,6 +20,7 @@ from liftpool.data_prep.errors import InputError
 from liftpool.models.estimands import (
     PROBABILITIES,
     add_money,
+    interval,
     placebo_summary,
     shrinkage_summary,
     summarize,
@@ -69,13 +70,6 @@ KIND_OF_ROW = {"campaign": "campaign", "portfolio": "all campaigns", "new campai
 def label(key: str, level: float, currency: str) -> str:
     """The printed label of a column key at ``level`` and ``currency``."""
     return COLUMNS[key][0].format(L=int(round(level * 100)), cur=currency)
-
-
-def interval(draws: np.ndarray, level: float) -> tuple[float, float]:
-    """Equal-tailed interval of draws at ``level``."""
-    a = (1 - level) / 2
-    lo, hi = np.quantile(np.asarray(draws, dtype=float).ravel(), [a, 1 - a])
-    return float(lo), float(hi)
 
 
 @dataclass
