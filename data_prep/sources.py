@@ -8,8 +8,10 @@ and only a failing one is looked at again to list its first rows.
 
 from __future__ import annotations
 
+import contextlib
 import difflib
 import os
+import weakref
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -70,9 +72,22 @@ MEASUREMENT = (
 )
 
 
+#: Every connection :func:`connect` made that is still open (weakly held): Ctrl-C interrupts their queries.
+_OPEN = weakref.WeakSet()
+
+
+def interrupt_queries() -> None:
+    """Interrupt the running query of every open connection (a signal handler's job: DuckDB does not
+    stop for a KeyboardInterrupt raised while it works; it raises its InterruptException instead)."""
+    for con in list(_OPEN):
+        with contextlib.suppress(Exception):
+            con.interrupt()
+
+
 def connect(threads: int | None = None, memory_limit: str | None = None) -> duckdb.DuckDBPyConnection:
     """A DuckDB connection set to UTC, with a spill folder for out-of-core work."""
     con = duckdb.connect(":memory:")
+    _OPEN.add(con)
     con.execute("SET TimeZone = 'UTC'").fetchall()
     # DuckDB 2.0 folds isnan() to false from Parquet min/max statistics, which leave NaN out, so a NaN
     # written by pyarrow would pass as a number (and an unmeasured impression count as measured).
@@ -421,16 +436,19 @@ def _typed_view(con, table: Table, columns: list[Column], id_type: str, extra_se
     con.execute(f"CREATE OR REPLACE VIEW {table.view} AS SELECT {select} FROM {table.raw}").fetchall()
 
 
-def _duplicates(con, table: Table, keys: list[str], problem: str, fix: str) -> None:
+def _duplicates(con, table: Table, keys: list[str], problem: str, fix: str, column: str | None = None) -> None:
+    """Raise when rows repeat the same ``keys``: a cheap grouped count first, the rows only when needed."""
     k = ", ".join(_q(x) for x in keys)
+    n = con.execute(f"SELECT count(*) FROM (SELECT {k} FROM {table.raw} GROUP BY {k} HAVING count(*) > 1)").fetchall()[0][0]
+    if not n:
+        return
     rows = con.execute(
         f"SELECT rn, {k} FROM (SELECT row_number() OVER () AS rn, {k}, count(*) OVER (PARTITION BY {k}) AS n "
         f"FROM {table.raw}) WHERE n > 1 ORDER BY rn LIMIT 5"
     ).fetchall()
-    if rows:
-        n = con.execute(f"SELECT count(*) FROM (SELECT {k} FROM {table.raw} GROUP BY {k} HAVING count(*) > 1)").fetchall()[0][0]
-        raise InputError(problem=problem.format(n=n), file=table.label, column=", ".join(keys),
-                         rows=[BadRow(int(r[0]), ", ".join(repr(v) for v in r[1:])) for r in rows], fix=fix)
+    shown = (lambda r: ", ".join(repr(v) for v in r[1:])) if len(keys) <= 3 else (lambda r: "repeats another row")
+    raise InputError(problem=problem.format(n=n), file=table.label, column=column or ", ".join(keys),
+                     rows=[BadRow(int(r[0]), shown(r)) for r in rows], fix=fix)
 
 
 def open_inputs(
@@ -485,6 +503,10 @@ def open_inputs(
 
     imp_cols = list(SPECS["impressions"]) + ([VIEWABLE] if has_viewable else list(MEASUREMENT))
     _typed_view(con, imp, imp_cols, id_type)
+    # an impression logged twice (every column alike) would count twice in the frequency cells
+    _duplicates(con, imp, imp.columns, "{n} impression(s) appear on more than one identical row",
+                "remove the repeated rows (an export joined twice, or a log replayed); impressions that really "
+                "happened twice need timestamps that tell them apart", column="(all columns)")
     _typed_view(con, tables["conversions"], list(SPECS["conversions"]), id_type)
     _typed_view(con, tables["outcomes"], list(SPECS["outcomes"]), id_type)
     numeric_cov: dict[str, bool] = {}
@@ -503,6 +525,9 @@ def open_inputs(
             numeric_cov[cov] = _is_numeric(con, u, cov)
             cast = (f"try_cast(NULLIF(trim(CAST({_q(cov)} AS VARCHAR)), '') AS DOUBLE)" if numeric_cov[cov]
                     else f"NULLIF(CAST({_q(cov)} AS VARCHAR), '')")
+            if numeric_cov[cov]:  # an infinite value has no bin (it would become a cell of its own)
+                _run_checks(con, u, [(cov, f"isinf({cast})", "{n} value(s) are infinite",
+                                      f"write {cov} as a finite number, or leave it empty when unknown")])
             extra.append(f"{cast} AS {_q(cov)}")
         _typed_view(con, u, list(SPECS["users"]), id_type, extra_select=extra)
     elif covariates:

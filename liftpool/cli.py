@@ -204,6 +204,9 @@ def _cmd_demo(args, console: Console) -> int:
 
 
 _INTERRUPT_MESSAGE = "interrupted: nothing was changed by the unfinished step"
+#: Set once Ctrl-C or SIGTERM arrives: whatever error follows is the interruption's (DuckDB turns the
+#: KeyboardInterrupt raised inside its query into an InterruptException of its own).
+_INTERRUPTED = {"hit": False}
 
 
 def _install_interrupt_watchdog(grace_seconds: float = 10.0) -> None:
@@ -218,7 +221,8 @@ def _install_interrupt_watchdog(grace_seconds: float = 10.0) -> None:
 
     if threading.current_thread() is not threading.main_thread():
         return
-    state = {"hit": False}
+    state = _INTERRUPTED
+    state["hit"] = False
 
     def hard_exit() -> None:
         sys.stderr.write(_INTERRUPT_MESSAGE + "\n")
@@ -232,6 +236,9 @@ def _install_interrupt_watchdog(grace_seconds: float = 10.0) -> None:
         timer = threading.Timer(grace_seconds, hard_exit)
         timer.daemon = True
         timer.start()
+        sources = sys.modules.get("liftpool.data_prep.sources")
+        if sources is not None:  # a DuckDB query stops only when told to
+            sources.interrupt_queries()
         raise KeyboardInterrupt
 
     signal.signal(signal.SIGINT, handler)
@@ -261,6 +268,9 @@ def main(argv: list[str] | None = None) -> int:
         print(_INTERRUPT_MESSAGE, file=sys.stderr)
         return EXIT_INTERRUPTED
     except Exception as exc:  # noqa: BLE001 - last resort
+        if _INTERRUPTED["hit"] or type(exc).__name__ == "InterruptException":
+            print(_INTERRUPT_MESSAGE, file=sys.stderr)
+            return EXIT_INTERRUPTED
         print(f"internal error: {type(exc).__name__}: {exc}", file=sys.stderr)
         print("this is a bug in liftpool; run again with --verbose for the traceback and report it",
               file=sys.stderr)

@@ -3,7 +3,7 @@
     curve_p(psi)    exact conditional log-likelihood of pair p (cell baselines conditioned away)
     placebo p of c: psi_p = b_c (+ outcome_bias_o) + r_p,   r_p ~ N(0, residual_sd)
     target of c:    psi_t = b_c (+ outcome_bias_o) + x_c,   x_c = lift_c + r_t
-    b_c ~ N(bias_mean, bias_sd)             (or truncated at 0: bias_sign="nonnegative")
+    b_c ~ N(bias_mean, bias_sd)
     x_c ~ N(centre_c, sqrt(lift_sd^2 + residual_sd^2)),  centre_c = lift_mean (+ group effect)
 
 The placebo residuals are integrated out of the likelihood, pair by pair, by adaptive Gauss-Hermite
@@ -127,16 +127,14 @@ def build_conditional_model(design, curves: CurveSet, s: ModelSettings, shares: 
             psi_t = x
         else:
             residual_sd = pm.HalfNormal("residual_sd", s.residual_sd_scale)
+            if s.bias_sign != "any":
+                raise ValueError("a truncated bias is integrated by the collapsed model (models/collapsed.py)")
             if single:
                 mu_b, sd_b = 0.0, float(s.bias_mean_scale)
             else:
                 sd_b = pm.HalfNormal("bias_sd", s.bias_sd_scale)
-                mu_b = (pm.HalfNormal("bias_mean", s.bias_mean_scale) if s.bias_sign == "nonnegative"
-                        else pm.Normal("bias_mean", 0.0, s.bias_mean_scale))
-            if s.bias_sign == "nonnegative":
-                bias = pm.TruncatedNormal("bias", mu=mu_b, sigma=sd_b, lower=0.0, dims="campaign")
-            else:
-                bias = _partial("bias", pt.ones(C) * mu_b, sd_b, w_b, "campaign")
+                mu_b = pm.Normal("bias_mean", 0.0, s.bias_mean_scale)
+            bias = _partial("bias", pt.ones(C) * mu_b, sd_b, w_b, "campaign")
             tau = pt.sqrt(lift_sd**2 + residual_sd**2)
             x = _partial("target_excess", centre, tau, w_x, "campaign")
             eta = bias[d.pair_campaign]

@@ -19,7 +19,7 @@ import xarray as xr
 
 from liftpool.models.summary import NEW_CAMPAIGN, PORTFOLIO, SUMMARY_COLUMNS
 
-__all__ = ["estimand_draws", "add_money", "summarize", "QUANTITIES", "PROBABILITIES", "KINDS",
+__all__ = ["estimand_draws", "add_money", "summarize", "QUANTITIES", "PROBABILITIES", "KINDS", "USER_COUNTS",
            "cost_per_incremental", "placebo_summary", "shrinkage_summary", "interval"]
 
 #: The kinds of unit, in the order the units are listed.
@@ -46,11 +46,13 @@ PROBABILITIES = {
     "p_lift_positive": ("lift", 0.0, "share of draws with a bias-corrected lift above zero"),
     "p_paid_for_itself": ("return_on_ad_spend", 1.0, "share of draws with incremental revenue above spend"),
 }
+#: Constants by unit stored beside the draws: the users behind each campaign's estimate.
+USER_COUNTS = ("users_seen", "users_unseen")
 _PER_CAMPAIGN = ("lift", "lift_uncorrected", "lift_naive", "lift_logodds", "incremental_conversions",
                  "counterfactual_conversions")
 
 
-def estimand_draws(posterior: xr.Dataset, corrected: bool, seed: int) -> xr.Dataset:
+def estimand_draws(posterior: xr.Dataset, corrected: bool, seed: int, data: xr.Dataset | None = None) -> xr.Dataset:
     """The reported quantities' draws from a fit's posterior (full or quick: the same variables).
 
     Parameters
@@ -64,6 +66,9 @@ def estimand_draws(posterior: xr.Dataset, corrected: bool, seed: int) -> xr.Data
         False when no campaign has a placebo outcome: no bias-corrected quantity and no pooled rows.
     seed : int
         Seeds the new campaign's predictive draws.
+    data : Dataset, optional
+        The fit's constant data; its ``users_seen`` and ``users_unseen`` by campaign become the
+        constants :data:`USER_COUNTS` by unit (the portfolio's are the sums; a new campaign has none).
     """
     post = posterior
     camps = [str(c) for c in post.campaign.values]
@@ -102,6 +107,13 @@ def estimand_draws(posterior: xr.Dataset, corrected: bool, seed: int) -> xr.Data
     ds = xr.Dataset({q: (("chain", "draw", "unit"), v) for q, v in out.items()},
                     coords={"chain": post.chain.values, "draw": post.draw.values, "unit": units,
                             "kind": ("unit", kinds)})
+    if data is not None and all(k in data for k in USER_COUNTS):
+        for k in USER_COUNTS:
+            v = np.full(U, np.nan)
+            v[:len(camps)] = data[k].sel(campaign=camps).to_numpy().astype(float)
+            if corrected:
+                v[len(camps)] = v[:len(camps)].sum()
+            ds[k] = ("unit", v)
     ds.attrs["corrected"] = int(corrected)
     return ds
 

@@ -28,7 +28,7 @@ from liftpool.models.conditional import build_curves, cell_tables
 from liftpool.models.design import CampaignFlags, Design, make_design
 from liftpool.models.diagnostics import Diagnostics, check_convergence
 from liftpool.models.errors import FitError, LiftpoolWarning
-from liftpool.models.estimands import estimand_draws, summarize
+from liftpool.models.estimands import USER_COUNTS, estimand_draws, summarize
 from liftpool.models.gaussian import gaussian_posterior
 from liftpool.models.quick import quick_fit, quick_relative
 from liftpool.models.settings import ModelSettings, default_cores
@@ -91,8 +91,10 @@ class FitResult:
     estimands: xr.Dataset | None = None
 
     def __post_init__(self) -> None:
-        if self.estimands is None:  # a fit saved before the estimands were stored with it
-            self.estimands = estimand_draws(self.idata.posterior, self.corrected, self.settings.seed)
+        if self.estimands is None or not all(k in self.estimands for k in USER_COUNTS):
+            # a fit saved before the estimands (or their user counts) were stored with it
+            self.estimands = estimand_draws(self.idata.posterior, self.corrected, self.settings.seed,
+                                            self.idata.constant_data if "constant_data" in self.idata.groups() else None)
 
     @property
     def level(self) -> float:
@@ -487,10 +489,9 @@ def _initial_points(qcore: dict, shares, model, s: ModelSettings) -> list[dict]:
 def uses_collapsed(d: Design, s: ModelSettings) -> bool:
     """Whether the conditional model integrates the campaign effects out of the sampler.
 
-    It does unless a campaign's bias is truncated (``bias_sign="nonnegative"``) or there is nothing
-    population-level to sample (one campaign and no placebo).
+    It does unless there is nothing population-level to sample (one campaign and no placebo).
     """
-    return s.bias_sign == "any" and not (d.n_campaigns == 1 and d.flags.no_placebo_anywhere)
+    return not (d.n_campaigns == 1 and d.flags.no_placebo_anywhere)
 
 
 def _population_starts(qcore: dict, model, s: ModelSettings) -> list[dict]:
@@ -499,7 +500,8 @@ def _population_starts(qcore: dict, model, s: ModelSettings) -> list[dict]:
     out = []
     for c in range(s.chains):
         i = _start_draw(c, qcore)
-        out.append({k: (max(float(qcore[k][i]), 1e-3) if k.endswith("_sd") else float(qcore[k][i]))
+        positive = {v.name for v in model.free_RVs if model.rvs_to_transforms.get(v) is not None}
+        out.append({k: (max(abs(float(qcore[k][i])), 1e-3) if k in positive else float(qcore[k][i]))
                     for k in ("bias_mean", "bias_sd", "residual_sd", "lift_mean", "lift_sd") if k in names})
     return out
 
@@ -528,8 +530,8 @@ def _seeded_step(model, qcore: dict, s: ModelSettings):
         if x is not None and np.size(x) == n_draws * size:
             x = np.asarray(x, float).reshape(n_draws, size)
             tr = model.rvs_to_transforms.get(rv)
-            if tr is not None:
-                x = np.asarray(tr.forward(np.maximum(x, 1e-6), *rv.owner.inputs).eval(), float)
+            if tr is not None:  # a positive variable the quick mode drew unconstrained: its magnitude
+                x = np.asarray(tr.forward(np.maximum(np.abs(x), 1e-6), *rv.owner.inputs).eval(), float)
             cols.append(x)
             mean.append(x.mean(axis=0))
         else:
@@ -803,7 +805,7 @@ def fit_counts(
             if c in naive:
                 arr[:, :, i] = naive[c].reshape(post.sizes["chain"], post.sizes["draw"])
         idata.posterior["lift_naive"] = (("chain", "draw", "campaign"), arr)
-    est = estimand_draws(idata.posterior, corrected, s.seed)
+    est = estimand_draws(idata.posterior, corrected, s.seed, idata.constant_data)
     summary = summarize(est, s.level)
     info["seconds"] = round(time.perf_counter() - t0, 2)
     if not quick and not diag.converged:

@@ -19,6 +19,7 @@ import xarray as xr
 from liftpool.data_prep.errors import InputError
 from liftpool.models.estimands import (
     PROBABILITIES,
+    USER_COUNTS,
     add_money,
     interval,
     placebo_summary,
@@ -131,10 +132,10 @@ class ReportTables:
 def _results(summary: pd.DataFrame, summary50: pd.DataFrame, fit: FitResult, nonviewable: dict,
              spend_given: bool) -> pd.DataFrame:
     """One row per unit from the tidy summaries (at the level, and at 50% for the lift's inner band)."""
-    cd = fit.idata.constant_data
-    camps = [str(c) for c in fit.idata.posterior.campaign.values]
-    seen = {c: int(cd["users_seen"].sel(campaign=c)) for c in camps}
-    unseen = {c: int(cd["users_unseen"].sel(campaign=c)) for c in camps}
+    est = fit.estimands
+    users = {k: dict(zip(est.unit.values.astype(str), est[k].values, strict=True)) if k in est else {}
+             for k in USER_COUNTS}
+    camps = [str(u) for u, k in zip(est.unit.values, est["kind"].values, strict=True) if k == "campaign"]
     s = summary.set_index(["campaign", "quantity"])
     s50 = summary50.set_index(["campaign", "quantity"])
     present = set(summary["campaign"])
@@ -143,12 +144,8 @@ def _results(summary: pd.DataFrame, summary50: pd.DataFrame, fit: FitResult, non
     for u in units:
         kind = "campaign" if u in camps else ("portfolio" if u == PORTFOLIO else "new campaign")
         r = {"campaign": u, "row": kind}
-        if kind == "campaign":
-            r.update(users_seen=seen[u], users_unseen=unseen[u], nonviewable_share=nonviewable.get(u, np.nan))
-        elif kind == "portfolio":
-            r.update(users_seen=sum(seen.values()), users_unseen=sum(unseen.values()), nonviewable_share=np.nan)
-        else:
-            r.update(users_seen=np.nan, users_unseen=np.nan, nonviewable_share=np.nan)
+        r.update({k: users[k].get(u, np.nan) for k in USER_COUNTS})
+        r["nonviewable_share"] = nonviewable.get(u, np.nan) if kind == "campaign" else np.nan
 
         def get(q, col, src=s, u=u):
             return float(src.loc[(u, q), col]) if (u, q) in src.index else np.nan

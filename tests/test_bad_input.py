@@ -334,3 +334,35 @@ def test_a_header_naming_a_column_twice_is_refused(tmp_path):
     with pytest.raises(InputError) as e:
         prepare_counts(bad, p["conversions"], p["outcomes"])
     assert e.value.problem == f"the header names {head[0]!r} more than once" and e.value.file == str(bad)
+
+
+def test_an_impression_logged_twice_exact_message(tmp_path):
+    # every column alike: it would count twice in the frequency cells (seen/unseen is unchanged)
+    imp = pd.concat([IMP, IMP.iloc[[1]]], ignore_index=True)
+    e = err(tmp_path, imp=imp)
+    assert str(e) == (f"{tmp_path / 'impressions.csv'}, column '(all columns)': 1 impression(s) appear on more "
+                      "than one identical row\n"
+                      "  row 2: repeats another row\n"
+                      "  row 4: repeats another row\n"
+                      "  fix: remove the repeated rows (an export joined twice, or a log replayed); impressions "
+                      "that really happened twice need timestamps that tell them apart")
+
+
+def test_the_same_impression_at_another_time_is_valid(tmp_path):
+    imp = pd.concat([IMP, IMP.iloc[[1]].assign(served_at="2026-03-01T10:00:01Z")], ignore_index=True)
+    p = files(tmp_path, imp=imp)
+    res = prepare_counts(p["impressions"], p["conversions"], p["outcomes"])
+    # not a duplicate: all four impressions are measured (three before), none refused
+    assert res.summary.totals["impressions_measured"] == 4
+
+
+@pytest.mark.parametrize("value", ["inf", "-inf", "Infinity"])
+def test_an_infinite_users_covariate_is_refused(tmp_path, value):
+    users = pd.DataFrame({"user_id": ["a", "b", "c"], "age": ["31", value, "45"]})
+    p = files(tmp_path, users=users)
+    with pytest.raises(InputError) as e:
+        prepare_counts(p["impressions"], p["conversions"], p["outcomes"], users=p["users"],
+                       rules=CountingRules(covariates=("age",)))
+    assert str(e.value) == (f"{tmp_path / 'users.csv'}, column 'age': 1 value(s) are infinite\n"
+                            f"  row 2: '{value}'\n"
+                            "  fix: write age as a finite number, or leave it empty when unknown")

@@ -31,8 +31,10 @@ def start(*args):
     import tempfile
 
     out = tempfile.TemporaryFile(mode="w+")
-    return subprocess.Popen([sys.executable, "-m", "liftpool", *map(str, args)], stdout=out, stderr=out, text=True,
+    proc = subprocess.Popen([sys.executable, "-m", "liftpool", *map(str, args)], stdout=out, stderr=out, text=True,
                             start_new_session=True)
+    proc.output = out  # what it printed, once it has ended: seek(0) then read()
+    return proc
 
 
 def stop(proc, sig=signal.SIGKILL) -> None:
@@ -220,6 +222,9 @@ def test_second_concurrent_fit_is_refused(fitted_ws):
         r = run("fit", ws, "--quick")
         assert r.returncode == 2
         assert "the workspace is busy (fit, process" in r.stderr and "Traceback" not in r.stderr
+        # check only reads: it runs beside the fit
+        r = run("check", ws)
+        assert r.returncode == 0 and "all inputs are valid" in r.stdout, r.stderr
     finally:
         stop(proc)
         proc.wait(timeout=60)
@@ -274,3 +279,57 @@ def test_the_exposure_cache_is_private(tmp_path, data):
     assert stat.S_IMODE(cache.stat().st_mode) == 0o700
     files = [p for p in cache.rglob("*") if p.is_file()]
     assert files and all(stat.S_IMODE(p.stat().st_mode) == 0o600 for p in files)
+
+
+@pytest.mark.slow
+def test_ctrl_c_during_a_duckdb_query_ends_the_command_at_once(tmp_path):
+    # DuckDB does not stop for a KeyboardInterrupt raised while it works: the handler interrupts its
+    # queries, and the error that follows is reported as the interruption (exit 130), not as a bug
+    import duckdb
+
+    imp = tmp_path / "impressions.csv"
+    con = duckdb.connect()
+    con.execute(f"""COPY (SELECT 'u' || (i % 500000) AS user_id, 'c' || (i % 3) AS campaign,
+                    TIMESTAMP '2026-03-01 00:00:00' + to_seconds(i % 86400) AS served_at,
+                    (i % 2 = 0) AS viewable, i AS impression_no FROM range(6000000) t(i))
+                    TO '{imp}' (HEADER)""").fetchall()
+    pd.DataFrame({"user_id": ["u1"], "outcome": ["buy"], "converted_at": ["2026-03-02T00:00:00Z"]}).to_csv(
+        tmp_path / "conversions.csv", index=False)
+    pd.DataFrame({"campaign": ["c0", "c0", "c1", "c2"], "outcome": ["buy", "visit", "buy", "buy"],
+                  "role": ["target", "placebo", "target", "target"]}).to_csv(tmp_path / "outcomes.csv", index=False)
+    out = tmp_path / "counts.parquet"
+    proc = start("prepare", "--impressions", imp, "--conversions", tmp_path / "conversions.csv",
+                 "--outcomes", tmp_path / "outcomes.csv", "--out", out)
+    time.sleep(4.0)  # imports done, reading the 6M rows
+    assert proc.poll() is None, "prepare ended before the interrupt"
+    t0 = time.time()
+    stop(proc, signal.SIGINT)
+    code = proc.wait(timeout=60)
+    proc.output.seek(0)
+    text = proc.output.read()
+    assert code == 130, text
+    assert time.time() - t0 < 8.0  # not the 10 s grace period: the query stopped when told
+    assert "interrupted: nothing was changed by the unfinished step" in text and "Traceback" not in text
+    assert "internal error" not in text
+    assert not out.exists() and not list(tmp_path.glob("counts.summary*"))
+
+
+def test_the_interrupt_handler_stops_a_running_duckdb_query():
+    # a query that would run for minutes: Ctrl-C stops it within moments (without the handler's
+    # interrupt, DuckDB carries on and only the 10 s grace period's hard exit ends the command)
+    code = """
+import os, signal, threading, time
+from liftpool import cli
+from liftpool.data_prep.sources import connect
+cli._install_interrupt_watchdog(grace_seconds=60)
+con = connect()
+threading.Timer(0.5, lambda: os.kill(os.getpid(), signal.SIGINT)).start()
+t0 = time.time()
+try:
+    con.execute("SELECT count(*) FROM range(100000000000) t(i) WHERE i % 7 = 3").fetchall()
+    print("finished")
+except BaseException as e:
+    print(type(e).__name__, round(time.time() - t0, 2), cli._INTERRUPTED["hit"])
+"""
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120).stdout.split()
+    assert out[0] != "finished" and float(out[1]) < 5.0 and out[2] == "True", out
