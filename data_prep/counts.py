@@ -63,17 +63,21 @@ class PrepSummary:
         Whole-input tallies.
     rules : dict
         The counting rules used.
+    warnings : list of str
+        What is valid but probably not what the analyst meant (``Inputs.warnings``), shown first.
     """
 
     campaigns: pd.DataFrame
     windows: pd.DataFrame = field(default_factory=pd.DataFrame)
     totals: dict = field(default_factory=dict)
     rules: dict = field(default_factory=dict)
+    warnings: list = field(default_factory=list)
 
     def to_dict(self) -> dict:
         return {
             "totals": {k: (int(v) if isinstance(v, (int, np.integer)) else v) for k, v in self.totals.items()},
             "rules": self.rules,
+            "warnings": list(self.warnings),
             "campaigns": self.campaigns.to_dict(orient="records"),
             "windows": self.windows.to_dict(orient="records"),
         }
@@ -81,12 +85,13 @@ class PrepSummary:
     @classmethod
     def from_dict(cls, d: dict) -> PrepSummary:
         return cls(campaigns=pd.DataFrame(d.get("campaigns", [])), windows=pd.DataFrame(d.get("windows", [])),
-                   totals=dict(d.get("totals", {})), rules=dict(d.get("rules", {})))
+                   totals=dict(d.get("totals", {})), rules=dict(d.get("rules", {})),
+                   warnings=[str(w) for w in d.get("warnings", [])])
 
     def render(self) -> str:
         """Plain-text summary for the terminal."""
         t = self.totals
-        lines = ["Data preparation summary"]
+        lines = ["Data preparation summary"] + [f"  WARNING: {w}" for w in self.warnings]
         if "impression_rows" in t:
             lines.append(f"  impressions read: {t['impression_rows']:,}; conversions read: {t['conversion_rows']:,}"
                          f" ({t.get('conversion_rows_unknown_outcome', 0):,} for outcomes no campaign lists, ignored)")

@@ -8,6 +8,7 @@ equals a preparation from scratch with the new outcomes and conversions included
 
 from __future__ import annotations
 
+import difflib
 import json
 import os
 import shutil
@@ -94,7 +95,17 @@ def add_outcomes(
     _typed_view(con, t, list(SPECS["conversions"]), id_type)
     con.register("_new_pairs", new_pairs[["campaign", "outcome"]])
     con.execute("CREATE VIEW t_outcomes AS SELECT * FROM _new_pairs").fetchall()
-    # only the new outcomes' rows take part
+    # only the new outcomes' rows take part; a new outcome without any is a wrong name or file
+    have = dict(con.execute("SELECT outcome, count(*) FROM t_conversions GROUP BY outcome").fetchall())
+    empty = [o for o in new_pairs["outcome"].drop_duplicates() if o not in have]
+    if empty:
+        close = difflib.get_close_matches(empty[0], [str(o) for o in have], n=3, cutoff=0.6)
+        raise InputError(
+            problem=f"new outcome '{empty[0]}' has no conversion rows in {t.label}"
+                    + (f" (close names there: {', '.join(repr(c) for c in close)})" if close else ""),
+            file=t.label, column="outcome",
+            fix="check the outcome's spelling against the conversions file, or pass the conversions file "
+                "that holds it with --conversions; a placebo without conversions adds nothing")
     con.execute("CREATE OR REPLACE VIEW t_conversions_new AS SELECT * FROM t_conversions "
                 "WHERE outcome IN (SELECT outcome FROM t_outcomes)").fetchall()
     rows_read = int(con.execute("SELECT count(*) FROM t_conversions_new").fetchall()[0][0])

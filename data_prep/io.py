@@ -16,7 +16,9 @@ from pathlib import Path
 
 import pandas as pd
 
-__all__ = ["atomic_path", "atomic_folder", "write_table", "write_json", "write_text", "read_table", "file_sha256",
+from liftpool.data_prep.errors import InputError
+
+__all__ = ["atomic_path", "atomic_folder", "ensure_room", "ROOM_MARGIN_BYTES", "write_table", "write_json", "write_text", "read_table", "file_sha256",
            "input_sha256", "spreadsheet_safe", "FORMULA_STARTS"]
 
 
@@ -59,6 +61,41 @@ def atomic_folder(path: str | os.PathLike) -> Iterator[Path]:
     finally:
         if tmp.exists():
             shutil.rmtree(tmp, ignore_errors=True)
+
+
+#: Free space kept in hand beyond what a write is expected to need.
+ROOM_MARGIN_BYTES = 4 * 2**20
+
+
+def ensure_room(path: str | os.PathLike, need_bytes: int = 0) -> None:
+    """Refuse, before anything is written, an output place that is read-only or short of space.
+
+    ``path`` is the file or folder to be written (it need not exist yet); its nearest existing folder
+    is tried with a temporary file and its free space compared with ``need_bytes`` plus
+    :data:`ROOM_MARGIN_BYTES`.  A full disk found in the middle of writing an HDF5 file can crash
+    the writer outright (a segmentation fault in h5py), so fits check before writing.
+
+    Raises
+    ------
+    InputError
+        Naming the folder, what was found, and the fix (exit 2).
+    """
+    import shutil
+
+    place = Path(path).absolute().parent
+    while not place.exists() and place != place.parent:
+        place = place.parent
+    try:
+        with tempfile.TemporaryFile(dir=place):
+            pass
+    except OSError as exc:
+        raise InputError(problem=f"cannot write in {place}: {exc.strerror or exc}", file=str(path),
+                         fix="choose an output place on a disk you can write to") from None
+    free = shutil.disk_usage(place).free
+    if free < need_bytes + ROOM_MARGIN_BYTES:
+        raise InputError(problem=f"not enough free space in {place}: {free / 2**20:,.1f} MB free, about "
+                                 f"{(need_bytes + ROOM_MARGIN_BYTES) / 2**20:,.1f} MB needed",
+                         file=str(path), fix="free some space on that disk, or choose an output place on another")
 
 
 def _write(path: str | os.PathLike, writer: Callable[[Path], None]) -> Path:

@@ -109,7 +109,7 @@ def prepare_counts(
 
             con = SparkConnection(spark if spark is not None else spark_session())
         inputs = open_inputs(impressions, conversions, outcomes, users=users, spend=spend, covariates=user_covs,
-                             con=con)
+                             con=con, large_ad_pixels=rules.large_ad_pixels)
     if engine in ("duckdb", "spark"):
         say("building exposures (one pass over the impressions)")
         build_exposures(inputs, rules)
@@ -126,5 +126,6 @@ def prepare_counts(
     outcomes_df = inputs.con.execute("SELECT campaign, outcome, role FROM t_outcomes").df()
     say("applying the cell rules")
     counts, summary = finalize(raw, outcomes_df, rules)
+    summary.warnings = list(inputs.warnings)
     spend_df = inputs.con.execute("SELECT * FROM t_spend").df() if inputs.has("spend") else None
     return PrepResult(counts=counts, summary=summary, rules=rules, spend=spend_df)

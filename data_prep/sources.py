@@ -151,6 +151,8 @@ class Inputs:
     id_type: str
     has_viewable_column: bool
     numeric_covariates: dict[str, bool] = field(default_factory=dict)
+    #: What is valid but probably not what the analyst meant (printed loudly, kept in the prep summary).
+    warnings: list[str] = field(default_factory=list)
 
     def label(self, kind: str) -> str:
         return self.tables[kind].label
@@ -459,6 +461,7 @@ def open_inputs(
     spend=None,
     covariates: tuple[str, ...] = (),
     con: duckdb.DuckDBPyConnection | None = None,
+    large_ad_pixels: int = 242_500,
 ) -> Inputs:
     """Load and validate the inputs; raise :class:`InputError` on the first problem.
 
@@ -472,6 +475,14 @@ def open_inputs(
         Users-table columns to be used as cell covariates (built-ins excluded).
     con : DuckDB connection, optional
         Where to load them; a new one is made when omitted.
+    large_ad_pixels : int
+        The counting rules' size from which display ads follow the 30% rule (a warning names the
+        impressions of that size when their measurement column is missing).
+
+    Notes
+    -----
+    What is valid but probably a mistake (impressions repeated row for row, large ads without their
+    measurement column, outcomes without any conversion row) is collected in ``Inputs.warnings``.
     """
     con = con or connect()
     sources = {"impressions": impressions, "conversions": conversions, "outcomes": outcomes,
@@ -503,10 +514,25 @@ def open_inputs(
 
     imp_cols = list(SPECS["impressions"]) + ([VIEWABLE] if has_viewable else list(MEASUREMENT))
     _typed_view(con, imp, imp_cols, id_type)
-    # an impression logged twice (every column alike) would count twice in the frequency cells
-    _duplicates(con, imp, imp.columns, "{n} impression(s) appear on more than one identical row",
-                "remove the repeated rows (an export joined twice, or a log replayed); impressions that really "
-                "happened twice need timestamps that tell them apart", column="(all columns)")
+    warnings: list[str] = []
+    # identical rows are valid (two ads on one page in the same second, with no impression id to tell
+    # them apart), but an export joined twice looks the same: said, with its size
+    k = ", ".join(_q(x) for x in imp.columns)
+    n_rep = con.execute(f"SELECT COALESCE(SUM(n - 1), 0) FROM (SELECT count(*) AS n FROM {imp.raw} GROUP BY {k} "
+                        f"HAVING count(*) > 1)").fetchall()[0][0]
+    if n_rep:
+        warnings.append(f"{imp.label}: {int(n_rep):,} impression row(s) ({_share(n_rep, imp.n_rows)}) repeat "
+                        "an earlier row exactly (user, campaign, time and measurement). They are counted as "
+                        "separate impressions (two ads on one page in the same second); if the export "
+                        "duplicated them, remove the repeats, since they raise the frequency cells")
+    if not has_viewable and "seconds_in_view_30" not in imp.types:
+        n_large = con.execute(f"SELECT count(*) FROM {imp.view} WHERE ad_format = 'display' AND ad_width * ad_height "
+                              f">= {int(large_ad_pixels)}").fetchall()[0][0]
+        if n_large:
+            warnings.append(f"{imp.label}: {int(n_large):,} display impression(s) ({_share(n_large, imp.n_rows)}) "
+                            f"are {int(large_ad_pixels):,} pixels or larger, where the 30% rule applies, but the file "
+                            "has no seconds_in_view_30 column: they count as unmeasured. Add the column to "
+                            "measure them")
     _typed_view(con, tables["conversions"], list(SPECS["conversions"]), id_type)
     _typed_view(con, tables["outcomes"], list(SPECS["outcomes"]), id_type)
     numeric_cov: dict[str, bool] = {}
@@ -540,7 +566,7 @@ def open_inputs(
                     "keep one spend row per campaign")
 
     inputs = Inputs(con=con, tables=tables, id_type=id_type, has_viewable_column=has_viewable,
-                    numeric_covariates=numeric_cov)
+                    numeric_covariates=numeric_cov, warnings=warnings)
     _check_outcomes(inputs)
     return inputs
 
@@ -620,8 +646,42 @@ def _check_outcomes(inputs: Inputs) -> None:
     conv = inputs.tables["conversions"]
     if "campaign" in conv.types:
         _absent_campaigns(con, conv, served, inputs.label("impressions"))
+    _outcome_names(inputs, df)
     if inputs.has("spend"):
         _absent_campaigns(con, inputs.tables["spend"], served, inputs.label("impressions"))
+
+
+def _share(n: int, total: int) -> str:
+    """``n`` of ``total`` as a percentage a reader can take in ("< 0.1%" rather than "0.0%")."""
+    f = n / max(total, 1)
+    return "< 0.1%" if 0 < f < 0.001 else f"{f:.1%}"
+
+
+def _outcome_names(inputs: Inputs, listed: pd.DataFrame) -> None:
+    """Listed outcomes without a single conversion row: a typo when a close unlisted name has rows
+    (refused: a campaign would silently get no conversions), otherwise a warning."""
+    conv = inputs.tables["conversions"]
+    have = inputs.con.execute(f"SELECT outcome, count(*) AS n FROM {conv.view} GROUP BY outcome").df()
+    rows_of = dict(zip(have["outcome"].astype(str), have["n"].astype(int), strict=True))
+    unlisted = [o for o in rows_of if o not in set(listed["outcome"])]
+    out = inputs.tables["outcomes"]
+    for o in listed["outcome"].drop_duplicates():
+        if o in rows_of:
+            continue
+        uses = listed[listed.outcome == o]
+        roles = ", ".join(f"{r.role} of {r.campaign!r}" for r in uses.head(3).itertuples())
+        close = difflib.get_close_matches(o, unlisted, n=1, cutoff=0.75)
+        if close:
+            raise InputError(
+                problem=f"outcome '{o}' ({roles}) has no conversion rows, but the conversions have "
+                        f"'{close[0]}' ({rows_of[close[0]]:,} rows), which no campaign lists",
+                file=out.label, column="outcome",
+                rows=[BadRow(int(r.rn), f"{r.campaign!r}, {r.outcome!r}, {r.role!r}") for r in uses.head(5).itertuples()],
+                fix=f"if they are the same outcome, spell it '{close[0]}' in the outcomes file")
+        inputs.warnings.append(f"{out.label}: outcome '{o}' ({roles}) has no conversion rows in "
+                               f"{conv.label}; it adds nothing to the estimate"
+                               + (" and its campaign's lift rests on no target conversion" if "target" in set(uses.role)
+                                  else ""))
 
 
 def _absent_campaigns(con, table: Table, served: set, imp_label: str) -> None:

@@ -7,6 +7,7 @@ Exit codes: 0 ok, 1 internal error, 2 bad input, 3 fit not converged
 from __future__ import annotations
 
 import argparse
+import errno
 import os
 import sys
 import traceback
@@ -267,13 +268,31 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print(_INTERRUPT_MESSAGE, file=sys.stderr)
         return EXIT_INTERRUPTED
+    except OSError as exc:
+        if exc.errno not in _DISK_ERRORS or _INTERRUPTED["hit"]:
+            return _last_resort(exc, console)
+        # a disk that filled up or turned read-only while writing (every write is staged, so nothing
+        # half-written is left in place)
+        print(f"error: cannot write {exc.filename or 'the output'}: {exc.strerror}\n"
+              "  fix: free some space on that disk or choose an output place you can write to; then run the "
+              "command again", file=sys.stderr)
+        return EXIT_INPUT
     except Exception as exc:  # noqa: BLE001 - last resort
-        if _INTERRUPTED["hit"] or type(exc).__name__ == "InterruptException":
-            print(_INTERRUPT_MESSAGE, file=sys.stderr)
-            return EXIT_INTERRUPTED
-        print(f"internal error: {type(exc).__name__}: {exc}", file=sys.stderr)
-        print("this is a bug in liftpool; run again with --verbose for the traceback and report it",
-              file=sys.stderr)
-        if console.verbose:
-            traceback.print_exc()
-        return EXIT_INTERNAL
+        return _last_resort(exc, console)
+
+
+#: errno values of a full, read-only or forbidden output place.
+_DISK_ERRORS = {errno.ENOSPC, errno.EROFS, errno.EACCES, errno.EDQUOT, errno.EPERM}
+
+
+def _last_resort(exc: BaseException, console) -> int:
+    """An error nobody foresaw: a bug, unless it follows an interruption."""
+    if _INTERRUPTED["hit"] or type(exc).__name__ == "InterruptException":
+        print(_INTERRUPT_MESSAGE, file=sys.stderr)
+        return EXIT_INTERRUPTED
+    print(f"internal error: {type(exc).__name__}: {exc}", file=sys.stderr)
+    print("this is a bug in liftpool; run again with --verbose for the traceback and report it",
+          file=sys.stderr)
+    if console.verbose:
+        traceback.print_exc()
+    return EXIT_INTERNAL

@@ -99,6 +99,7 @@ def register(sub, common) -> None:
 def cmd_fit(args, console) -> int:
     from liftpool.data_prep import read_counts
     from liftpool.data_prep.errors import InputError
+    from liftpool.data_prep.io import ensure_room
     from liftpool.models import fit_counts
 
     if args.workspace:
@@ -106,6 +107,7 @@ def cmd_fit(args, console) -> int:
     if not args.counts or not args.out:
         raise InputError(problem="missing --counts or --out", fix="give a workspace (liftpool fit WS) or --counts and --out")
     out = Path(args.out)
+    ensure_room(out)  # a read-only or full disk is said before the fit, not after it
     if out.exists() and any(out.iterdir()):
         raise InputError(problem="the folder already holds files; a fit is never written over another",
                          file=str(out), fix="choose a new --out folder")

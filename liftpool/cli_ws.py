@@ -70,10 +70,12 @@ def cmd_check(args, console) -> int:
 
     ws = Workspace.open(args.workspace)
     # no lock: check only reads, and every file a command writes is switched in whole (a rename)
-    rows = ws.check(progress=console.step)
+    rows, warnings = ws.check(progress=console.step)
     for k, n in rows.items():
         console.out(f"{k}: {n:,} rows, valid")
-    console.out("all inputs are valid")
+    for w in warnings:
+        console.out(f"WARNING: {w}")
+    console.out("all inputs are valid" + (f", with {len(warnings)} warning(s) above" if warnings else ""))
     return 0
 
 

@@ -86,6 +86,17 @@ def _pid_alive(pid: int) -> bool:
     return True
 
 
+@contextlib.contextmanager
+def _unstage_on_failure(new_config: dict) -> Iterator[None]:
+    """Remove the staged copy of new outcomes (the config's last outcomes file) when counting them fails:
+    a refused add-placebo leaves the workspace as it was."""
+    try:
+        yield
+    except BaseException:
+        Path(_as_list(new_config["inputs"]["outcomes"])[-1]).unlink(missing_ok=True)
+        raise
+
+
 def _recover_stale_lock(path: Path, held: str, f, wait: float = 5.0) -> bool:
     """Take over a lock whose command is gone: True once the lock is ours.
 
@@ -268,8 +279,8 @@ class Workspace:
                 "outcomes": outcomes, "users": i.get("users"), "spend": i.get("spend")}
 
     # ---- commands ------------------------------------------------------------------------------
-    def check(self, progress: Callable[[str], None] | None = None) -> dict:
-        """Validate every input (no counting); returns rows per input."""
+    def check(self, progress: Callable[[str], None] | None = None) -> tuple[dict, list[str]]:
+        """Validate every input (no counting); returns rows per input and the inputs' warnings."""
         from liftpool.data_prep.rules import BUILTIN_COVARIATES
         from liftpool.data_prep.sources import open_inputs
 
@@ -277,8 +288,8 @@ class Workspace:
         covs = tuple(c for c in self.rules.covariates if c not in BUILTIN_COVARIATES)
         (progress or (lambda _m: None))("checking inputs")
         opened = open_inputs(inp["impressions"], inp["conversions"], inp["outcomes"], users=inp["users"],
-                             spend=inp["spend"], covariates=covs)
-        return {k: t.n_rows for k, t in opened.tables.items()}
+                             spend=inp["spend"], covariates=covs, large_ad_pixels=self.rules.large_ad_pixels)
+        return {k: t.n_rows for k, t in opened.tables.items()}, opened.warnings
 
     def current(self) -> Path | None:
         cur = self.path / "prepared" / "CURRENT"
@@ -394,7 +405,8 @@ class Workspace:
         if self.engine == "spark":
             _, _, new_config, _ = self._stage_new_outcomes(outcomes_file, conversions)
             (progress or (lambda _m: None))("Spark workspace: recounting every outcome on Spark")
-            summary = self.prepare(progress=progress, config=new_config)
+            with _unstage_on_failure(new_config):
+                summary = self.prepare(progress=progress, config=new_config)
             return summary, int(summary.totals.get("impression_rows", 0))
         gen = self.current()
         if gen is None or not (gen / "cache").is_dir():
@@ -417,7 +429,8 @@ class Workspace:
         # does not list it yet: a retry of the same add-placebo then succeeds (it recounts and lists
         # it), and a fit in between uses the counts, which include it. The other order left a config
         # listing a placebo the counts lacked, and refused the retry as "already listed".
-        name = self._build_generation(build)
+        with _unstage_on_failure(new_config):
+            name = self._build_generation(build)
         self._switch(name)
         self.config = new_config
         self._write_config()

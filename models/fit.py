@@ -22,7 +22,7 @@ import pandas as pd
 import xarray as xr
 
 from liftpool.data_prep.errors import InputError
-from liftpool.data_prep.io import atomic_folder, write_json
+from liftpool.data_prep.io import atomic_folder, ensure_room, write_json
 from liftpool.models.completion import complete_draws
 from liftpool.models.conditional import build_curves, cell_tables
 from liftpool.models.design import CampaignFlags, Design, make_design
@@ -129,6 +129,9 @@ class FitResult:
         if folder.exists() and any(folder.iterdir()):
             raise InputError(problem="the folder already holds files; a fit is never written over another",
                              file=str(folder), fix="choose a new --out folder")
+        # the uncompressed size bounds the files: a full disk is refused here, not met by the HDF5 writer
+        need = sum(int(self.idata[g].nbytes) for g in self.idata.groups()) + int(self.estimands.nbytes)
+        ensure_room(folder, need)
         with atomic_folder(folder) as tmp:
             self.idata.to_netcdf(str(tmp / "posterior.nc"), engine="h5netcdf")
             self.summary.to_csv(tmp / "summary.csv", index=False)

@@ -336,24 +336,28 @@ def test_a_header_naming_a_column_twice_is_refused(tmp_path):
     assert e.value.problem == f"the header names {head[0]!r} more than once" and e.value.file == str(bad)
 
 
-def test_an_impression_logged_twice_exact_message(tmp_path):
-    # every column alike: it would count twice in the frequency cells (seen/unseen is unchanged)
+def test_an_impression_logged_twice_is_counted_and_said(tmp_path):
+    # valid (two ads on one page in the same second look alike without an impression id), but an
+    # export joined twice looks the same: a warning with the count, in the summary and its JSON
     imp = pd.concat([IMP, IMP.iloc[[1]]], ignore_index=True)
-    e = err(tmp_path, imp=imp)
-    assert str(e) == (f"{tmp_path / 'impressions.csv'}, column '(all columns)': 1 impression(s) appear on more "
-                      "than one identical row\n"
-                      "  row 2: repeats another row\n"
-                      "  row 4: repeats another row\n"
-                      "  fix: remove the repeated rows (an export joined twice, or a log replayed); impressions "
-                      "that really happened twice need timestamps that tell them apart")
+    p = files(tmp_path, imp=imp)
+    res = prepare_counts(p["impressions"], p["conversions"], p["outcomes"])
+    assert res.summary.warnings[:1] == [
+        f"{tmp_path / 'impressions.csv'}: 1 impression row(s) (25.0%) repeat an earlier row exactly (user, "
+        "campaign, time and measurement). They are counted as separate impressions (two ads on one page in "
+        "the same second); if the export duplicated them, remove the repeats, since they raise the "
+        "frequency cells"]
+    assert res.summary.totals["impressions_measured"] == 4
+    assert "WARNING: " + res.summary.warnings[0] in res.summary.render()
+    assert res.summary.to_dict()["warnings"] == res.summary.warnings
 
 
 def test_the_same_impression_at_another_time_is_valid(tmp_path):
     imp = pd.concat([IMP, IMP.iloc[[1]].assign(served_at="2026-03-01T10:00:01Z")], ignore_index=True)
     p = files(tmp_path, imp=imp)
     res = prepare_counts(p["impressions"], p["conversions"], p["outcomes"])
-    # not a duplicate: all four impressions are measured (three before), none refused
     assert res.summary.totals["impressions_measured"] == 4
+    assert not any("repeat an earlier row" in w for w in res.summary.warnings)
 
 
 @pytest.mark.parametrize("value", ["inf", "-inf", "Infinity"])
@@ -366,3 +370,42 @@ def test_an_infinite_users_covariate_is_refused(tmp_path, value):
     assert str(e.value) == (f"{tmp_path / 'users.csv'}, column 'age': 1 value(s) are infinite\n"
                             f"  row 2: '{value}'\n"
                             "  fix: write age as a finite number, or leave it empty when unknown")
+
+
+def test_a_misspelled_outcome_is_refused_with_the_close_name(tmp_path):
+    # the target 'purchse' has no conversion row; 'purchase' has rows and no campaign lists it: the
+    # campaign would silently get 0 target conversions
+    conv = pd.DataFrame({"user_id": ["a", "b"], "outcome": ["purchase", "purchase"],
+                         "converted_at": ["2026-03-02T10:00:00Z"] * 2})
+    out = pd.DataFrame({"campaign": ["C1", "C2"], "outcome": ["purchse", "purchse"], "role": ["target", "target"]})
+    e = err(tmp_path, conv=conv, out=out)
+    assert str(e) == (f"{tmp_path / 'outcomes.csv'}, column 'outcome': outcome 'purchse' (target of 'C1', "
+                      "target of 'C2') has no conversion rows, but the conversions have 'purchase' (2 rows), "
+                      "which no campaign lists\n"
+                      "  row 1: 'C1', 'purchse', 'target'\n"
+                      "  row 2: 'C2', 'purchse', 'target'\n"
+                      "  fix: if they are the same outcome, spell it 'purchase' in the outcomes file")
+
+
+def test_an_outcome_without_conversions_is_said(tmp_path):
+    # 'visit' (a placebo of C1) has no conversion row and nothing like it: valid, said
+    p = files(tmp_path)
+    res = prepare_counts(p["impressions"], p["conversions"], p["outcomes"])
+    assert res.summary.warnings == [f"{tmp_path / 'outcomes.csv'}: outcome 'visit' (placebo of 'C1') has no "
+                                    f"conversion rows in {tmp_path / 'conversions.csv'}; it adds nothing to the "
+                                    "estimate"]
+
+
+def test_large_ads_without_their_measurement_column_are_said(tmp_path):
+    # 970 x 250 = 242,500 px: the 30% rule applies (MRC/IAB display guideline, docs/counting-rules.md),
+    # and without seconds_in_view_30 such an impression is unmeasured
+    imp = pd.DataFrame({"user_id": ["a", "b", "c", "d"], "campaign": ["C1", "C1", "C2", "C2"],
+                        "served_at": ["2026-03-01T10:00:00Z"] * 4, "ad_format": ["display"] * 4,
+                        "ad_width": [300, 970, 970, 300], "ad_height": [250, 250, 250, 250],
+                        "seconds_in_view_50": [1.5, 2.0, 0.0, 0.2]})
+    p = files(tmp_path, imp=imp)
+    res = prepare_counts(p["impressions"], p["conversions"], p["outcomes"])
+    assert (f"{tmp_path / 'impressions.csv'}: 2 display impression(s) (50.0%) are 242,500 pixels or larger, where "
+            "the 30% rule applies, but the file has no seconds_in_view_30 column: they count as unmeasured. Add "
+            "the column to measure them") in res.summary.warnings
+    assert res.summary.totals["impressions_measured"] == 2

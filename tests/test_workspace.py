@@ -153,6 +153,15 @@ def test_add_placebo_rejects_targets_and_duplicates(tmp_path, data):
     pd.DataFrame({"campaign": ["tool-club"], "outcome": ["x"], "role": ["target"]}).to_csv(bad, index=False)
     r = run("add-placebo", tmp_path / "w", "--outcomes", bad)
     assert r.returncode == 2 and "only placebo outcomes" in r.stderr
+    # a placebo without a single conversion row (a misspelling, or the wrong file): refused, nothing changed
+    before = snapshot(tmp_path / "w")
+    pd.DataFrame({"campaign": ["tool-club"], "outcome": ["newsletter_signupp"], "role": ["placebo"]}).to_csv(
+        bad, index=False)
+    r = run("add-placebo", tmp_path / "w", "--outcomes", bad)
+    assert r.returncode == 2 and "Traceback" not in r.stderr, r.stderr
+    assert "new outcome 'newsletter_signupp' has no conversion rows in" in r.stderr
+    assert "check the outcome's spelling against the conversions file" in r.stderr
+    assert snapshot(tmp_path / "w") == before
 
 
 def test_config_rejects_unknown_keys_listing_valid_ones(tmp_path, data):
