@@ -24,7 +24,11 @@ __all__ = ["atomic_path", "atomic_folder", "ensure_room", "ROOM_MARGIN_BYTES", "
 
 @contextlib.contextmanager
 def atomic_path(path: str | os.PathLike) -> Iterator[Path]:
-    """Yield a temporary path beside ``path``; on success rename it over ``path``."""
+    """Yield a temporary path beside ``path``; on success rename it over ``path``.
+
+    The file gets the permissions any new file gets (0644 under the usual umask), not the temporary
+    file's private 0600.
+    """
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
@@ -32,6 +36,9 @@ def atomic_path(path: str | os.PathLike) -> Iterator[Path]:
     tmp_path = Path(tmp)
     try:
         yield tmp_path
+        mask = os.umask(0)
+        os.umask(mask)
+        os.chmod(tmp_path, 0o666 & ~mask)
         os.replace(tmp_path, path)
     finally:
         if tmp_path.exists():

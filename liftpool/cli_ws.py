@@ -108,11 +108,15 @@ def cmd_history(args, console) -> int:
 
 def cmd_compare(args, console) -> int:
     from liftpool.data_prep.io import atomic_folder, spreadsheet_safe, write_table
+    from liftpool.reports.compare import CHANGE_LIFT, CHANGE_WIDTH
+    from liftpool.reports.money import fmt_pct, fmt_pp
     from liftpool.workspace import Workspace
 
     ws = Workspace.open(args.workspace)
     a, b = ws.resolve_fit(args.a), ws.resolve_fit(args.b)
     table, png = ws.compare(a, b)
+    for w in table.attrs.get("warnings", []):
+        console.out(f"WARNING: {w}")
     # a new folder each time, written whole or not at all (never over an earlier comparison)
     base = ws.path / "reports" / f"compare-{a}-vs-{b}"
     out, n = base, 2
@@ -122,12 +126,14 @@ def cmd_compare(args, console) -> int:
     with atomic_folder(out) as tmp:
         write_table(spreadsheet_safe(table), tmp / "compare.csv")
         (tmp / "compare.png").write_bytes(png)
-    cols = ["campaign", f"lift median ({a})", f"lift median ({b})", "change in lift median",
-            "change in interval width", f"bias median, log odds ({a})", f"bias median, log odds ({b})"]
+    cols = ["campaign", f"lift median ({a})", f"lift median ({b})", CHANGE_LIFT, CHANGE_WIDTH,
+            f"bias median, log odds ({a})", f"bias median, log odds ({b})"]
     fmt = table[[c for c in cols if c in table.columns]].copy()
     for c in fmt.columns[1:]:
-        pct = "lift" in c or "width" in c
-        fmt[c] = fmt[c].map(lambda v, pct=pct: "" if v != v else (f"{v:+.1%}" if pct else f"{v:.3f}"))
+        # lifts in percent; their changes in percentage points (a difference of percentages)
+        kind = "pp" if c in (CHANGE_LIFT, CHANGE_WIDTH) else "pct" if "lift" in c else "num"
+        fmt[c] = fmt[c].map(lambda v, kind=kind: "" if v != v else fmt_pp(v) if kind == "pp"
+                            else fmt_pct(v) if kind == "pct" else f"{v:.3f}")
     console.out(fmt.to_string(index=False))
     console.out(f"\ntable and figure: {Path(out)}")
     return 0

@@ -542,7 +542,7 @@ class Workspace:
                 mode = str(m["mode"])
                 rows.append({"fit": fid, "created": m["created"], "mode": mode,
                              # a quick fit has no sampler, so there is nothing to converge
-                             "converged": ("yes" if m["converged"] else "NO") if mode == "full" else "n/a (quick)",
+                             "converged": ("yes" if m["converged"] else "NO") if mode == "full" else "quick (no sampler checks)",
                              "placebo pairs": m.get("placebo_pairs"), "prepared": m.get("prepared"),
                              "median bias (log odds)": float(bias.median()) if len(bias) else float("nan"),
                              "portfolio lift (median)": float(port["median"].iloc[0]) if len(port) else float("nan")})

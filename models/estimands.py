@@ -46,8 +46,8 @@ PROBABILITIES = {
     "p_lift_positive": ("lift", 0.0, "share of draws with a bias-corrected lift above zero"),
     "p_paid_for_itself": ("return_on_ad_spend", 1.0, "share of draws with incremental revenue above spend"),
 }
-#: Constants by unit stored beside the draws: the users behind each campaign's estimate.
-USER_COUNTS = ("users_seen", "users_unseen")
+#: Constants by unit stored beside the draws: the users and target conversions behind each estimate.
+USER_COUNTS = ("users_seen", "users_unseen", "target_conversions_seen", "target_conversions_unseen")
 _PER_CAMPAIGN = ("lift", "lift_uncorrected", "lift_naive", "lift_logodds", "incremental_conversions",
                  "counterfactual_conversions")
 
@@ -67,7 +67,7 @@ def estimand_draws(posterior: xr.Dataset, corrected: bool, seed: int, data: xr.D
     seed : int
         Seeds the new campaign's predictive draws.
     data : Dataset, optional
-        The fit's constant data; its ``users_seen`` and ``users_unseen`` by campaign become the
+        The fit's constant data; its users and target conversions by campaign become the
         constants :data:`USER_COUNTS` by unit (the portfolio's are the sums; a new campaign has none).
     """
     post = posterior

@@ -8,7 +8,13 @@ import pandas as pd
 from liftpool.models.fit import FitResult
 from liftpool.reports.figures import STYLE, png_bytes
 
-__all__ = ["compare_fits"]
+__all__ = ["compare_fits", "CHANGE_LIFT", "CHANGE_WIDTH"]
+
+#: The change columns: differences of lifts (fractions), i.e. percentage points over 100.
+CHANGE_LIFT = "change in lift median (percentage points / 100)"
+CHANGE_WIDTH = "change in interval width (percentage points / 100)"
+#: The narrowest span of the bias axis (log odds): differences smaller than this look small.
+MIN_BIAS_SPAN = 0.2
 
 
 def compare_fits(a: FitResult, b: FitResult, name_a: str, name_b: str) -> tuple[pd.DataFrame, bytes]:
@@ -33,8 +39,8 @@ def compare_fits(a: FitResult, b: FitResult, name_a: str, name_b: str) -> tuple[
                 r[f"lift upper ({tag})"] = lt.loc[c, "upper"]
                 r[f"interval width ({tag})"] = lt.loc[c, "upper"] - lt.loc[c, "lower"]
             r[f"bias median, log odds ({tag})"] = bt.loc[c, "median"] if c in bt.index else np.nan
-        r["change in lift median"] = r.get(f"lift median ({name_b})", np.nan) - r.get(f"lift median ({name_a})", np.nan)
-        r["change in interval width"] = (r.get(f"interval width ({name_b})", np.nan)
+        r[CHANGE_LIFT] = r.get(f"lift median ({name_b})", np.nan) - r.get(f"lift median ({name_a})", np.nan)
+        r[CHANGE_WIDTH] = (r.get(f"interval width ({name_b})", np.nan)
                                          - r.get(f"interval width ({name_a})", np.nan))
         rows.append(r)
     table = pd.DataFrame(rows)
@@ -44,6 +50,11 @@ def compare_fits(a: FitResult, b: FitResult, name_a: str, name_b: str) -> tuple[
             d = f.idata.posterior["bias_mean"].values.ravel()
             pooled[f"bias median, log odds ({tag})"] = float(np.median(d))
     table = pd.concat([table, pd.DataFrame([pooled])], ignore_index=True)
+    # a comparison is only as good as its fits: say when one was not checked or did not pass
+    table.attrs["warnings"] = [
+        f"fit {tag} did not converge: its numbers are not reliable, and neither is how they moved" if f.mode == "full"
+        else f"fit {tag} is a quick fit (no sampler checks): an approximation for screening"
+        for tag, f in ((name_a, a), (name_b, b)) if f.mode != "full" or not f.converged]
     with mpl.rc_context(STYLE):
         fig, (ax1, ax2) = new_figure((9, 0.45 * len(camps) + 1.4), nrows=1, ncols=2, sharey=True,
                                        gridspec_kw={"width_ratios": [3, 2]})
@@ -58,8 +69,15 @@ def compare_fits(a: FitResult, b: FitResult, name_a: str, name_b: str) -> tuple[
         ax1.set_yticks(y, [plain_text(c) for c in camps])
         ax1.set_xlabel("lift (median and interval)")
         ax1.xaxis.set_major_formatter(FuncFormatter(lambda v, _p: f"{v:+.0%}"))
-        ax1.legend(fontsize=8, loc="lower right")
+        # the legend under the panels, never over an interval
+        ax1.legend(fontsize=8, loc="upper left", bbox_to_anchor=(0.0, -0.12), ncol=2, frameon=False)
         ax2.set_xlabel("bias on the target (log odds)")
+        # a bias axis at least MIN_BIAS_SPAN wide: a change of 0.01 log odds must not fill the panel
+        vals = table[[c for c in table.columns if c.startswith("bias median")]].to_numpy(float)
+        vals = vals[np.isfinite(vals)]
+        if vals.size:
+            mid, half = (vals.max() + vals.min()) / 2, max((vals.max() - vals.min()) / 2 * 1.15, MIN_BIAS_SPAN / 2)
+            ax2.set_xlim(mid - half, mid + half)
         ax1.set_title(f"How the estimates moved: fit {name_a} to fit {name_b}", loc="left")
         png = png_bytes(fig)
     return table, png

@@ -11,6 +11,7 @@ from html import escape
 import numpy as np
 import pandas as pd
 
+from liftpool.reports.glossary import GLOSSARY
 from liftpool.reports.money import fmt_int, fmt_money, fmt_pct, fmt_prob, fmt_ratio
 from liftpool.reports.tables import KIND_OF_ROW, ReportTables
 
@@ -27,6 +28,7 @@ h1 { font-size: 17pt; margin: 0 0 2mm; } h2 { font-size: 13pt; margin: 7mm 0 2mm
 .status { border: 1.5px solid #111; padding: 2.5mm 3.5mm; margin: 3mm 0; }
 .status.bad { border: 3px double #111; background: #e6e6e6; font-weight: bold; }
 .status.warn { border-style: dashed; }
+.glossary dt { font-weight: bold; margin-top: 2mm; } .glossary dd { margin: 0 0 1mm 5mm; }
 .caution { border-left: 4px solid #111; padding: 1mm 3mm; margin: 3mm 0; background: #f2f2f2; }
 table { border-collapse: collapse; width: 100%; font-size: 7.6pt; margin: 2mm 0 3mm; }
 th, td { padding: 1mm 1mm; border-bottom: 0.6px solid #999; text-align: right; vertical-align: top; }
@@ -183,7 +185,7 @@ def _df_table(df: pd.DataFrame, fmt: dict | None = None) -> str:
 
 def render_html(t: ReportTables, figures: dict[str, bytes], paragraphs: list[tuple[str, str]], portfolio: str,
                 converged: bool, mode: str, flags: dict, title: str, prep_totals: dict | None,
-                screen: tuple | None = None) -> str:
+                screen: tuple | None = None, prep_warnings: tuple[str, ...] = ()) -> str:
     """The self-contained report page; ``screen`` is (suggested covariates, ranking, balance) of a screen."""
     L = int(round(t.level * 100))
     parts = [f"<!DOCTYPE html><html lang=\"en\"><head><meta charset=\"utf-8\"><title>{esc(title)}</title>"
@@ -200,6 +202,8 @@ def render_html(t: ReportTables, figures: dict[str, bytes], paragraphs: list[tup
         parts.append('<div class="status">Convergence checks passed (R-hat, effective sample size, divergences).</div>')
     for m in flags.get("messages", []):
         parts.append(f'<div class="caution">{esc(m)}</div>')
+    for w in prep_warnings:
+        parts.append(f'<div class="caution">Data preparation: {esc(w)}</div>')
     parts.append("<h2>Summary</h2>")
     parts.append(f"<p><b>Portfolio.</b> {esc(portfolio)}</p>")
     for c, s in paragraphs:
@@ -228,6 +232,9 @@ def render_html(t: ReportTables, figures: dict[str, bytes], paragraphs: list[tup
         parts.append(_img(name, png, captions.get(name, name)))
     parts.append("<h2>Assumptions and cautions</h2>")
     parts.extend(f'<p class="caution">{c}</p>' for c in CAUTIONS)
+    parts.append('<h2>Words used in this report</h2><dl class="glossary">')
+    parts.extend(f"<dt>{esc(k)}</dt><dd>{esc(v)}</dd>" for k, v in GLOSSARY.items())
+    parts.append("</dl>")
     parts.append("<h2>Appendix</h2><h3>Convergence diagnostics</h3>")
     parts.append(_df_table(t.diagnostics))
     if prep_totals:

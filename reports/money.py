@@ -6,7 +6,7 @@ import math
 
 import pandas as pd
 
-__all__ = ["currency_symbol", "fmt_money", "fmt_pct", "fmt_int", "fmt_count", "fmt_ratio", "fmt_prob"]
+__all__ = ["currency_symbol", "fmt_money", "fmt_pct", "fmt_pp", "fmt_int", "fmt_count", "fmt_ratio", "fmt_prob"]
 
 _SYMBOLS = {"USD": "$", "EUR": "€", "GBP": "£", "JPY": "¥", "CAD": "C$", "AUD": "A$", "CHF": "CHF "}
 
@@ -35,6 +35,14 @@ def fmt_pct(x, decimals: int = 1, signed: bool = True) -> str:
     if _bad(x):
         return "n/a"
     return f"{x * 100:+,.{decimals}f}%" if signed else f"{x * 100:,.{decimals}f}%"
+
+
+def fmt_pp(x, decimals: int = 1) -> str:
+    """A difference of two fractions in percentage points: 0.016 -> ``+1.6 pp`` (never "%", which
+    would read as a relative change)."""
+    if _bad(x):
+        return "n/a"
+    return f"{x * 100:+,.{decimals}f} pp"
 
 
 def fmt_int(x) -> str:

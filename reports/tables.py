@@ -37,6 +37,8 @@ COLUMNS = {
     "row": ("row", "text"),
     "users_seen": ("users seen", "int"),
     "users_unseen": ("users unseen", "int"),
+    "target_conversions_seen": ("target conversions, seen users", "int"),
+    "target_conversions_unseen": ("target conversions, unseen users", "int"),
     "nonviewable_share": ("non-viewable share of measured impressions", "share"),
     "lift_naive": ("naive lift (median)", "pct"),
     "lift_uncorrected": ("uncorrected lift (median)", "pct"),
@@ -171,8 +173,9 @@ def _results(summary: pd.DataFrame, summary50: pd.DataFrame, fit: FitResult, non
         r["notes"] = "; ".join(notes)
         rows.append(r)
     out = pd.DataFrame(rows)
-    for k in ("users_seen", "users_unseen"):
-        out[k] = out[k].astype("Int64")  # whole numbers, empty for a new campaign
+    for k in USER_COUNTS:
+        if k in out:
+            out[k] = out[k].astype("Int64")  # whole numbers, empty for a new campaign
     keep = [k for k in COLUMNS if k in out.columns and (k in ("campaign", "row", "notes") or out[k].notna().any())]
     return out[keep]
 

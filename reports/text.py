@@ -4,10 +4,13 @@ from __future__ import annotations
 
 import math
 
+import numpy as np
+
 from liftpool.reports.money import fmt_count, fmt_money, fmt_pct, fmt_prob, fmt_ratio
 from liftpool.reports.tables import ReportTables
 
-__all__ = ["campaign_paragraphs", "portfolio_paragraph", "cost_sentence", "SPREAD_FLOOR"]
+__all__ = ["campaign_paragraphs", "portfolio_paragraph", "cost_sentence", "SPREAD_FLOOR", "SMALL_SAMPLE_CONVERSIONS",
+           "could_be_zero", "small_sample"]
 
 #: A spread of campaign lifts (sd, log odds) below this is "about the same" for the reader: 0.02
 #: log odds is a 2% relative difference in the odds (common practice, no source).
@@ -49,6 +52,23 @@ def _return_sentence(r: dict, whole: str) -> str:
             f"{fmt_prob(r['p_paid_for_itself'])}.")
 
 
+#: Fewer target conversions than this (seen and unseen users together) make a campaign's own estimate
+#: thin; the report says so (common practice, no source: a rate from a couple of dozen events is
+#: still very noisy).
+SMALL_SAMPLE_CONVERSIONS = 30
+
+
+def could_be_zero(r: dict) -> bool:
+    """The one rule for "cannot rule out that it added nothing": the interval's lower end at or below 0."""
+    return bool(r["lift_lower"] <= 0)
+
+
+def small_sample(r: dict) -> bool:
+    """The one rule for the small-sample caution: fewer than :data:`SMALL_SAMPLE_CONVERSIONS` target conversions."""
+    n = r.get("target_conversions_seen", np.nan) + r.get("target_conversions_unseen", np.nan)
+    return bool(n == n and n < SMALL_SAMPLE_CONVERSIONS)
+
+
 def campaign_paragraphs(t: ReportTables, flags: dict) -> list[tuple[str, str]]:
     """(campaign, sentence) for each campaign, in the table's order."""
     L = int(round(t.level * 100))
@@ -69,9 +89,13 @@ def campaign_paragraphs(t: ReportTables, flags: dict) -> list[tuple[str, str]]:
              f"({fmt_pct(r['lift_lower'])} to {fmt_pct(r['lift_upper'])}) over what they would have done anyway.")
         s += cost_sentence(r, cur)
         s += _return_sentence(r, "it")
-        if r["lift_lower"] <= 0:
+        if could_be_zero(r):
             s += (f" The data cannot rule out that it added nothing: the {L}% interval reaches zero (chance of a "
                   f"positive lift {fmt_prob(r['p_lift_positive'])}).")
+        if small_sample(r):
+            n = int(r["target_conversions_seen"] + r["target_conversions_unseen"])
+            s += (f" Its own data are thin ({fmt_count(n, 'target conversion', 'target conversions')} in all), so its "
+                  "estimate leans on the other campaigns (partial pooling).")
         if c in no_placebo:
             s += " It has no placebo outcome of its own, so its bias is borrowed from the other campaigns."
         if t.spend_given and not _finite(r.get("spend")):

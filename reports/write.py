@@ -182,7 +182,8 @@ def write_report(
     if prep_summary is not None:
         totals = {k: v for k, v in prep_summary.totals.items() if not isinstance(v, dict)}
     html = render_html(tables, figures, campaign_paragraphs(tables, flags), portfolio_paragraph(tables),
-                       fit.converged, fit.mode, flags, title, totals, screen=screen_tables)
+                       fit.converged, fit.mode, flags, title, totals, screen=screen_tables,
+                       prep_warnings=tuple(prep_summary.warnings) if prep_summary is not None else ())
     with atomic_folder(out) as tmp:
         (tmp / "report.html").write_text(html, encoding="utf-8")
         named = tables.named()

@@ -234,3 +234,50 @@ def test_a_300_campaign_report_stays_readable_and_small(tmp_path):
         assert h < 0.42 * (MAX_ROWS + 2) * 130 + 400, (png.name, h)  # inches x dpi, with the margins
     csv = pd.read_csv(out / "campaign_results.csv")
     assert (csv["row"] == "campaign").sum() == 300  # the tables keep every campaign
+
+
+def test_every_technical_term_on_the_page_is_in_its_glossary(demo_fit, tmp_path):
+    from pathlib import Path
+
+    from liftpool.reports.glossary import GLOSSARY
+
+    fit, spend = demo_fit
+    html = (write_report(fit, tmp_path / "r", spend=spend) / "report.html").read_text()
+    p = _Text()
+    p.feed(html)
+    text = " ".join(p.text)
+    glossary = text[text.index("Words used in this report"):]
+    for term, meaning in GLOSSARY.items():
+        assert term in glossary and meaning in glossary, term
+    # the jargon a finance reader meets in reports (the full fit's appendix adds R-hat and ESS), each explained
+    body = text[:text.index("Words used in this report")].lower()
+    for word in ("all campaigns", "a new campaign (predictive)", "credible interval", "placebo", "cells",
+                 "return on ad spend"):
+        assert word in body, word
+    for word in ("R-hat", "effective sample size", "divergences", "(portfolio)", "(new campaign)", "log odds",
+                 "credible interval", "placebo", "cells", "return on ad spend", "partial pooling"):
+        assert any(word.lower() in (k + v).lower() for k, v in GLOSSARY.items()), word
+    # docs/glossary.md is the same list, word for word
+    doc = (Path(__file__).parents[1] / "docs" / "glossary.md").read_text()
+    for term, meaning in GLOSSARY.items():
+        assert f"**{term}**: {meaning}" in doc, term
+
+
+def test_one_rule_decides_could_be_zero_and_small_sample_for_every_campaign(demo_fit, tmp_path):
+    from liftpool.reports.text import SMALL_SAMPLE_CONVERSIONS, campaign_paragraphs
+
+    fit, spend = demo_fit
+    t = build_tables(fit, spend=spend)
+    paras = dict(campaign_paragraphs(t, fit.flags.to_dict()))
+    post = fit.idata.posterior
+    cd = fit.idata.constant_data
+    seen_zero = seen_small = 0
+    for c in [str(x) for x in post.campaign.values]:
+        # the references: the lift draws' own lower quantile, and the counts table's target conversions
+        lo = np.quantile(post["lift"].sel(campaign=c).values.ravel(), 0.05)
+        n = int(cd["target_conversions_seen"].sel(campaign=c) + cd["target_conversions_unseen"].sel(campaign=c))
+        assert ("cannot rule out that it added nothing" in paras[c]) == (lo <= 0), (c, lo)
+        assert ("Its own data are thin" in paras[c]) == (n < SMALL_SAMPLE_CONVERSIONS), (c, n)
+        seen_zero += lo <= 0
+        seen_small += n < SMALL_SAMPLE_CONVERSIONS
+    assert 0 < seen_zero < len(paras) or seen_small > 0  # the demo exercises at least one caution

@@ -10,6 +10,7 @@ import sys
 import time
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 import pytest
 
@@ -89,11 +90,23 @@ def test_refit_cycle_end_to_end(tmp_path, data):
     assert h.returncode == 0 and "001-quick" in h.stdout and "002-quick" in h.stdout
     hist = Workspace.open(ws).history()
     assert list(hist["placebo pairs"]) == [hist["placebo pairs"][0], hist["placebo pairs"][0] + 2]
-    assert list(hist["converged"]) == ["n/a (quick)", "n/a (quick)"]  # no sampler, nothing to converge
+    # no sampler, nothing to converge
+    assert list(hist["converged"]) == ["quick (no sampler checks)", "quick (no sampler checks)"]
     c = run("compare", ws, "1", "2")
     assert c.returncode == 0, c.stderr
-    assert (ws / "reports" / "compare-001-quick-vs-002-quick" / "compare.png").is_file()
+    cmp = ws / "reports" / "compare-001-quick-vs-002-quick"
+    assert (cmp / "compare.png").is_file()
     assert "(pooled bias mean, log odds)" in c.stdout
+    # quick fits compared: said; changes of lifts in percentage points; files readable like other outputs
+    assert "WARNING: fit 001-quick is a quick fit (no sampler checks)" in c.stdout
+    assert " pp" in c.stdout
+    mask = os.umask(0)
+    os.umask(mask)
+    assert {p.name: p.stat().st_mode & 0o777 for p in cmp.iterdir()} == {"compare.csv": 0o666 & ~mask,
+                                                                          "compare.png": 0o666 & ~mask}
+    table = pd.read_csv(cmp / "compare.csv")
+    d = table["change in lift median (percentage points / 100)"]
+    np.testing.assert_allclose(d, table["lift median (002-quick)"] - table["lift median (001-quick)"])
     # the first fit is untouched, byte for byte
     assert snapshot(ws / "fits" / "001-quick") == first
     # one damaged manifest does not hide the other fits
