@@ -53,6 +53,82 @@ def plain_text(text: str) -> str:
 _plain = plain_text
 
 
+#: The least distance between tick labels on a lift axis (inches): +100%, +200% and +500% sit close on
+#: the compressed scale and used to print over each other.
+MIN_TICK_GAP_IN = 0.5
+
+
+def _spaced_ticks(ax, candidates, axis: str = "x", min_gap_in: float = MIN_TICK_GAP_IN) -> list[float]:
+    """The candidate ticks within the axis's limits, dropping any closer than ``min_gap_in`` to the last
+    kept one on the page (the axis's scale and limits must be set)."""
+    lo, hi = sorted(ax.get_xlim() if axis == "x" else ax.get_ylim())
+    vals = sorted(v for v in candidates if lo <= v <= hi)
+    dpi = ax.figure.dpi
+    pts = [ax.transData.transform((v, 0) if axis == "x" else (0, v))[0 if axis == "x" else 1] / dpi for v in vals]
+    kept, last = [], None
+    for v, pt in zip(vals, pts, strict=True):
+        if last is None or abs(pt - last) >= min_gap_in or v == 0:
+            if kept and abs(pt - last) < min_gap_in:  # 0 always shows: it replaces a crowding neighbour
+                kept.pop()
+            kept.append(v)
+            last = pt
+    return kept
+
+
+def _place_labels(ax, items, fontsize: float = 7) -> None:
+    """Annotate points with names that never overlap: each name (in the order given, most important
+    first) takes the first free place around its point; a name with no free place is left out."""
+    renderer = ax.figure.canvas.get_renderer()
+    placed = []
+    offsets = ((4, 4, "left", "bottom"), (4, -4, "left", "top"), (-4, 4, "right", "bottom"),
+               (-4, -4, "right", "top"), (6, 0, "left", "center"), (-6, 0, "right", "center"),
+               (0, 8, "center", "bottom"), (0, -8, "center", "top"), (10, 14, "left", "bottom"),
+               (10, -14, "left", "top"), (-10, 14, "right", "bottom"), (-10, -14, "right", "top"),
+               (0, 22, "center", "bottom"), (0, -22, "center", "top"))
+    for name, x, y in items:
+        for dx, dy, ha, va in offsets:
+            a = ax.annotate(name, (x, y), fontsize=fontsize, xytext=(dx, dy), textcoords="offset points", ha=ha, va=va)
+            box = a.get_window_extent(renderer)
+            if not any(box.overlaps(b) for b in placed):
+                placed.append(box)
+                break
+            a.remove()
+
+
+def _dodged(ax, x: float, ys, min_gap_pt: float) -> list[float]:
+    """Vertical text offsets (points) that keep labels at (x, y) at least ``min_gap_pt`` apart, each as
+    near its own y as the others allow (1-D: order kept, clusters centred on their points)."""
+    ys = np.asarray(ys, float)
+    px = np.array([ax.transData.transform((x, y))[1] for y in ys]) * 72.0 / ax.figure.dpi
+    order = np.argsort(px)
+    pos = px[order].copy()
+    # sweep up, then centre each run of touching labels on its points
+    groups = [[0]]
+    for i in range(1, len(pos)):
+        if pos[i] - pos[groups[-1][-1]] < min_gap_pt:
+            groups[-1].append(i)
+        else:
+            groups.append([i])
+    changed = True
+    while changed:
+        changed = False
+        for g in groups:
+            centre = px[order][g].mean()
+            start = centre - (len(g) - 1) * min_gap_pt / 2
+            pos[g] = start + min_gap_pt * np.arange(len(g))
+        merged = [groups[0]]
+        for g in groups[1:]:
+            if pos[g[0]] - pos[merged[-1][-1]] < min_gap_pt:
+                merged[-1] = merged[-1] + g
+                changed = True
+            else:
+                merged.append(g)
+        groups = merged
+    out = np.empty_like(pos)
+    out[order] = pos - px[order]
+    return list(out)
+
+
 def _row_label(r: dict) -> str:
     return _plain(r["campaign"]) if r["row"] == "campaign" else KIND_OF_ROW[r["row"]]
 
@@ -91,12 +167,16 @@ def _lift_figure(t: ReportTables) -> bytes:
     ax.axvline(0, color="black", linewidth=0.8)
     ax.set_yticks(y, [_row_label(r) for r in res])
     ax.set_xscale("symlog", linthresh=1.0)
-    ticks = [t_ for t_ in (-0.5, 0, 0.25, 0.5, 1, 2, 5, 10, 20) if t_ <= max(1.0, xmax * 1.2)]
+    ax.autoscale_view()
+    ticks = _spaced_ticks(ax, (-0.5, -0.25, 0, 0.25, 0.5, 1, 2, 5, 10, 20, 50))
     ax.set_xticks(ticks, [f"{v:+.0%}" for v in ticks])
     ax.set_xlabel(f"lift among seen users (median and {t.level:.0%} interval; scale compressed above +100%)")
     ax.legend(loc="lower right", fontsize=8, frameon=True)
     more = f" ({len(shown)} largest of {len(camps)} campaigns; the table lists all)" if len(shown) < len(camps) else ""
-    ax.set_title("Lift by campaign: naive, uncorrected and bias-corrected" + more)
+    present = [name for name, q in (("naive", "lift_naive"), ("uncorrected", "lift_uncorrected"),
+                                    ("bias-corrected", "lift")) if any(np.isfinite(r.get(q, np.nan)) for r in res)]
+    ax.set_title("Lift by campaign: " + (", ".join(present[:-1]) + " and " + present[-1] if len(present) > 1
+                                         else present[0]) + more)
     return png_bytes(fig)
 
 
@@ -136,14 +216,13 @@ def _shrinkage_figure(t: ReportTables) -> bytes:
                 fmt="none", ecolor="0.6", linewidth=1)
     ax.scatter(s["alone (log odds)"], s["pooled, median (log odds)"], s=size, facecolor="white", edgecolor="black",
                zorder=3)
-    named = set(s["target conversions"].sort_values(ascending=False).index[:MAX_LABELS])
-    for i, (name, xa, ya) in enumerate(zip(s["campaign"], s["alone (log odds)"], s["pooled, median (log odds)"],
-                                           strict=True)):
-        if s.index[i] in named:
-            ax.annotate(_plain(name), (xa, ya), fontsize=7, xytext=(4, 4), textcoords="offset points")
     lim = [min(s["alone (log odds)"].min(), s["pooled lower"].min()) - 0.05,
            max(s["alone (log odds)"].max(), s["pooled upper"].max()) + 0.05]
     ax.plot(lim, lim, ":", color="black", linewidth=1, label="no pooling (pooled = alone)")
+    ax.autoscale_view()
+    biggest = s["target conversions"].sort_values(ascending=False).index[:MAX_LABELS]
+    _place_labels(ax, [(_plain(s.loc[i, "campaign"]), s.loc[i, "alone (log odds)"],
+                        s.loc[i, "pooled, median (log odds)"]) for i in biggest])
     ax.set_xlabel("campaign alone: target minus its own placebos (log odds)")
     ax.set_ylabel("pooled estimate (median, log odds)")
     ax.set_title("Shrinkage: small campaigns borrow strength\n(circle area ~ target conversions)")
@@ -160,22 +239,25 @@ def _steps_figure(t: ReportTables) -> bytes:
     fig, ax = new_figure((6.4, 4.2))
     x = np.arange(len(cols))
     styles = ["-", "--", "-.", ":"]
-    for i, name in enumerate(c["campaign"]):
+    for i in range(len(c)):
         vals = [c.loc[i, k] for k, _ in cols]
         ax.plot(x, vals, styles[i % 4], marker="o", color="black" if i % 2 == 0 else "0.45", linewidth=1,
                 markersize=4)
-        ax.annotate(_plain(name), (x[-1], vals[-1]), fontsize=7, xytext=(5, 0), textcoords="offset points",
-                    va="center")
     ax.set_xticks(x, [lab for _, lab in cols])
     ax.set_yscale("symlog", linthresh=1.0)
     ax.axhline(0, color="black", linewidth=0.8)
-    ticks = [v for v in (0, 0.1, 0.25, 0.5, 1, 2, 5) if v <= max(1.0, float(c[[k for k, _ in cols]].max().max()) * 1.2)]
+    ax.set_xlim(-0.2, len(cols) - 1 + 0.9)
+    ax.autoscale_view(scalex=False)
+    ticks = _spaced_ticks(ax, (-0.5, -0.25, 0, 0.1, 0.25, 0.5, 1, 2, 5, 10), axis="y", min_gap_in=0.22)
     ax.set_yticks(ticks, [f"{v:+.0%}" for v in ticks])
+    # each name beside its line's end, moved apart just enough not to overlap (7 pt text: 9 pt apart)
+    ends = [float(c.loc[i, cols[-1][0]]) for i in range(len(c))]
+    for name, yv, dy in zip(c["campaign"], ends, _dodged(ax, x[-1], ends, 9.0), strict=True):
+        ax.annotate(_plain(name), (x[-1], yv), fontsize=7, xytext=(5, dy), textcoords="offset points", va="center")
     ax.set_ylabel("lift (median)")
     n_all = len(t.campaigns)
     ax.set_title("From naive to bias-corrected, per campaign"
                  + (f" ({len(c)} largest of {n_all})" if len(c) < n_all else ""))
-    ax.set_xlim(-0.2, len(cols) - 1 + 0.9)
     return png_bytes(fig)
 
 

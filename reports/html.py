@@ -6,13 +6,14 @@ Every user-provided string (campaign, outcome, cell and file names) goes through
 from __future__ import annotations
 
 import base64
+import re
 from html import escape
 
 import numpy as np
 import pandas as pd
 
 from liftpool.reports.glossary import GLOSSARY
-from liftpool.reports.money import fmt_int, fmt_money, fmt_pct, fmt_prob, fmt_ratio
+from liftpool.reports.money import fmt_int, fmt_money, fmt_pct, fmt_plain, fmt_prob, fmt_ratio
 from liftpool.reports.tables import KIND_OF_ROW, ReportTables
 
 __all__ = ["render_html", "CAUTIONS"]
@@ -33,7 +34,8 @@ h1 { font-size: 17pt; margin: 0 0 2mm; } h2 { font-size: 13pt; margin: 7mm 0 2mm
 table { border-collapse: collapse; width: 100%; font-size: 7.6pt; margin: 2mm 0 3mm; }
 th, td { padding: 1mm 1mm; border-bottom: 0.6px solid #999; text-align: right; vertical-align: top; }
 th { border-bottom: 1.5px solid #111; font-weight: bold; background: #f2f2f2; }
-td.l, th.l { text-align: left; } td.l { word-break: break-word; }
+td.l, th.l { text-align: left; } td.l { overflow-wrap: break-word; }
+td:not(.l):not(.iv), .nw { white-space: nowrap; }
 th { font-size: 7.2pt; } tr { page-break-inside: avoid; } thead { display: table-header-group; }
 .fig { margin: 3mm 0 5mm; page-break-inside: avoid; } .fig img { max-width: 100%; height: auto; }
 .fig .cap { font-size: 8.5pt; color: #333; }
@@ -62,6 +64,16 @@ def esc(x) -> str:
     return escape(str(x), quote=True)
 
 
+def esc_name(x) -> str:
+    """A user's name, escaped, that may break only after ``_ - . /`` (never mid-word on a page)."""
+    return re.sub(r"([_\-./])", r"\1<wbr>", esc(x))
+
+
+def _num(text: str) -> str:
+    """A number's cell: right-aligned and never broken across lines."""
+    return f'<td class="n">{esc(text)}</td>'
+
+
 def _img(name: str, png: bytes, caption: str) -> str:
     b64 = base64.b64encode(png).decode("ascii")
     return (f'<div class="fig"><img alt="{esc(caption)}" src="data:image/png;base64,{b64}">'
@@ -69,14 +81,16 @@ def _img(name: str, png: bytes, caption: str) -> str:
 
 
 def _iv(lo, hi, f) -> str:
-    # a no-break space keeps "a to" together when a narrow (printed) column wraps
-    return f"{esc(f(lo))}\u00a0to {esc(f(hi))}"
+    # an interval may wrap between its ends ("a to" / "b"), a number never; none at all is one "n/a"
+    if not (np.isfinite(lo) or np.isfinite(hi)):
+        return "n/a"
+    return f'<span class="nw">{esc(f(lo))}\u00a0to</span> <span class="nw">{esc(f(hi))}</span>'
 
 
 def _name(r: dict) -> str:
     """A row's first cell: the campaign, or what a pooled row is (escaped)."""
     if r["row"] == "campaign":
-        return esc(r["campaign"])
+        return esc_name(r["campaign"])
     return f"<i>{esc(KIND_OF_ROW[r['row']])}</i>"
 
 
@@ -98,22 +112,22 @@ def _lift_table(t: ReportTables) -> str:
     rows = []
     for r in rows_in:
         share = v(r, "nonviewable_share")
-        cells = [f'<td class="l">{_name(r)}</td>', f"<td>{fmt_int(v(r, 'users_seen'))}</td>",
-                 f"<td>{fmt_int(v(r, 'users_unseen'))}</td>",
-                 f"<td>{fmt_pct(share, signed=False) if np.isfinite(share) else 'n/a'}</td>"]
+        cells = [f'<td class="l">{_name(r)}</td>', f'<td class="n">{fmt_int(v(r, "users_seen"))}</td>',
+                 f'<td class="n">{fmt_int(v(r, "users_unseen"))}</td>',
+                 f'<td class="n">{fmt_pct(share, signed=False) if np.isfinite(share) else "n/a"}</td>']
         if naive:
             cells.append(f"<td>{fmt_pct(v(r, 'lift_naive'))}</td>")
         cells.append(f"<td>{fmt_pct(v(r, 'lift_uncorrected'))}</td>")
         if t.corrected:
             cells += [f"<td><b>{fmt_pct(v(r, 'lift'))}</b></td>",
-                      f"<td>{_iv(v(r, 'lift_lower50'), v(r, 'lift_upper50'), fmt_pct)}</td>",
-                      f"<td>{_iv(v(r, 'lift_lower'), v(r, 'lift_upper'), fmt_pct)}</td>",
+                      f"<td class='iv'>{_iv(v(r, 'lift_lower50'), v(r, 'lift_upper50'), fmt_pct)}</td>",
+                      f"<td class='iv'>{_iv(v(r, 'lift_lower'), v(r, 'lift_upper'), fmt_pct)}</td>",
                       f"<td>{fmt_int(v(r, 'incremental_conversions'))}</td>",
-                      f"<td>{_iv(v(r, 'incremental_conversions_lower'), v(r, 'incremental_conversions_upper'), fmt_int)}"
+                      f"<td class='iv'>{_iv(v(r, 'incremental_conversions_lower'), v(r, 'incremental_conversions_upper'), fmt_int)}"
                       "</td>",
                       f"<td>{fmt_prob(v(r, 'p_lift_positive'))}</td>"]
         else:
-            cells.append(f"<td>{_iv(v(r, 'lift_uncorrected_lower'), v(r, 'lift_uncorrected_upper'), fmt_pct)}</td>")
+            cells.append(f"<td class='iv'>{_iv(v(r, 'lift_uncorrected_lower'), v(r, 'lift_uncorrected_upper'), fmt_pct)}</td>")
         rows.append("<tr>" + "".join(cells) + "</tr>")
     th = "".join(f'<th class="l">{esc(h)}</th>' if i == 0 else f"<th>{esc(h)}</th>" for i, h in enumerate(head))
     return f"<table><thead><tr>{th}</tr></thead><tbody>{''.join(rows)}</tbody></table>"
@@ -142,13 +156,13 @@ def _money_table(t: ReportTables) -> str:
         m = lambda x: fmt_money(x, cur)  # noqa: E731
         cells = [f'<td class="l">{_name(r)}</td>', f"<td>{m(r['spend'])}</td>",
                  f"<td><b>{m(r['cost_per_incremental_conversion'])}</b></td>",
-                 f"<td>{_iv(r['cost_per_incremental_conversion_lower'], r['cost_per_incremental_conversion_upper'], m)}"
+                 f"<td class='iv'>{_iv(r['cost_per_incremental_conversion_lower'], r['cost_per_incremental_conversion_upper'], m)}"
                  "</td>"]
         if has_value and np.isfinite(r.get("return_on_ad_spend", np.nan)):
             cells += [f"<td>{m(r['incremental_revenue'])}</td>",
-                      f"<td>{_iv(r['incremental_revenue_lower'], r['incremental_revenue_upper'], m)}</td>",
+                      f"<td class='iv'>{_iv(r['incremental_revenue_lower'], r['incremental_revenue_upper'], m)}</td>",
                       f"<td><b>{fmt_ratio(r['return_on_ad_spend'])}</b></td>",
-                      f"<td>{_iv(r['return_on_ad_spend_lower'], r['return_on_ad_spend_upper'], fmt_ratio)}</td>",
+                      f"<td class='iv'>{_iv(r['return_on_ad_spend_lower'], r['return_on_ad_spend_upper'], fmt_ratio)}</td>",
                       f"<td>{fmt_prob(r['p_paid_for_itself'])}</td>"]
         elif has_value:
             cells += ["<td>n/a</td>"] * 5
@@ -169,16 +183,15 @@ def _df_table(df: pd.DataFrame, fmt: dict | None = None) -> str:
         tds = []
         for col, v in zip(df.columns, r, strict=True):
             if col in fmt:
-                text = fmt[col](v)
-            elif isinstance(v, (float, np.floating)):
-                text = "n/a" if not np.isfinite(v) else f"{v:,.4g}"
+                tds.append(f'<td class="l">{esc(fmt[col](v))}</td>')
             elif isinstance(v, (bool, np.bool_)):
-                text = "yes" if v else "NO"
+                tds.append(f'<td class="l">{"yes" if v else "no"}</td>')
+            elif isinstance(v, (float, np.floating)):
+                tds.append(_num(fmt_plain(v)))
             elif isinstance(v, (int, np.integer)):
-                text = f"{v:,}"
+                tds.append(_num(f"{v:,}"))
             else:
-                text = str(v)
-            tds.append(f'<td class="l">{esc(text)}</td>')
+                tds.append(f'<td class="l">{esc_name(v)}</td>')
         body.append("<tr>" + "".join(tds) + "</tr>")
     return f"<table><thead><tr>{th}</tr></thead><tbody>{''.join(body)}</tbody></table>"
 

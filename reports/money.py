@@ -6,7 +6,7 @@ import math
 
 import pandas as pd
 
-__all__ = ["currency_symbol", "fmt_money", "fmt_pct", "fmt_pp", "fmt_int", "fmt_count", "fmt_ratio", "fmt_prob"]
+__all__ = ["currency_symbol", "fmt_money", "fmt_pct", "fmt_pp", "fmt_plain", "fmt_int", "fmt_count", "fmt_ratio", "fmt_prob"]
 
 _SYMBOLS = {"USD": "$", "EUR": "€", "GBP": "£", "JPY": "¥", "CAD": "C$", "AUD": "A$", "CHF": "CHF "}
 
@@ -21,11 +21,16 @@ def _bad(x) -> bool:
     return x is None or x is pd.NA or (isinstance(x, float) and (math.isnan(x) or math.isinf(x)))
 
 
+#: Amounts below this show cents; larger ones are whole (cents there are noise, and wide columns).
+CENTS_BELOW = 1000
+
+
 def fmt_money(x, code: str = "USD", decimals: int | None = None) -> str:
-    """Money with thousands separators: ``$12,345`` (cents below 100)."""
+    """Money with thousands separators: ``$12,345``, with cents below :data:`CENTS_BELOW` (the one rule
+    for every amount on the page, so that ``$167.00`` stands beside ``$47.52``, not ``$167``)."""
     if _bad(x):
         return "not bounded" if isinstance(x, float) and math.isinf(x) else "n/a"
-    d = decimals if decimals is not None else (2 if abs(x) < 100 else 0)
+    d = decimals if decimals is not None else (2 if abs(x) < CENTS_BELOW else 0)
     sign = "-" if x < 0 else ""
     return f"{sign}{currency_symbol(code)}{abs(x):,.{d}f}"
 
@@ -43,6 +48,14 @@ def fmt_pp(x, decimals: int = 1) -> str:
     if _bad(x):
         return "n/a"
     return f"{x * 100:+,.{decimals}f} pp"
+
+
+def fmt_plain(x) -> str:
+    """A plain number in a table (log odds, p-values, counts as floats): three decimals below 1,000,
+    whole numbers with thousands separators above; never a float's raw digits."""
+    if _bad(x):
+        return "n/a"
+    return f"{x:,.0f}" if abs(x) >= 1000 else f"{x:.3f}"
 
 
 def fmt_int(x) -> str:

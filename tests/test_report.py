@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 import shutil
 import subprocess
 from html.parser import HTMLParser
@@ -14,7 +15,7 @@ import pytest
 from liftpool.data_prep import prepare_counts, simulate
 from liftpool.models import ModelSettings, fit_counts
 from liftpool.reports import write_report
-from liftpool.reports.money import fmt_money, fmt_pct
+from liftpool.reports.money import fmt_int, fmt_money, fmt_pct
 
 EVIL = "<script>alert(1)</script>"
 
@@ -215,3 +216,72 @@ def test_real_browser_renders_without_errors(small, tmp_path):
     bad = [ln for ln in r.stderr.splitlines()
            if "CONSOLE" in ln or "Failed to load resource" in ln or "net::ERR" in ln or "Uncaught" in ln]
     assert not bad, bad
+
+
+@pytest.mark.skipif(CHROMIUM is None, reason="chromium is not installed (.ci/run installs Debian's chromium)")
+@pytest.mark.parametrize("paper", ["A4", "letter"])
+def test_printed_tables_fit_the_page_and_never_break_a_number_or_a_name(small, tmp_path, paper):
+    # printed by a real browser on A4 and on Letter, and read back from the PDF (pypdf): every number of
+    # the results table is one whole word, every campaign name breaks (if at all) only after - _ . /,
+    # and the last columns are on the page
+    from pypdf import PdfReader
+
+    fit, _, _, out = small
+    page = tmp_path / f"report_{paper}.html"
+    page.write_text((out / "report.html").read_text().replace("@page { size: auto;", f"@page {{ size: {paper};"))
+    pdf = tmp_path / f"report_{paper}.pdf"
+    r = subprocess.run(
+        [CHROMIUM, "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+         "--disable-background-networking", "--disable-component-update", "--disable-sync",
+         f"--user-data-dir={tmp_path / 'profile'}", "--no-pdf-header-footer", f"--print-to-pdf={pdf}",
+         page.as_uri()], capture_output=True, text=True, timeout=180)
+    assert r.returncode == 0 and pdf.exists(), r.stderr[-2000:]
+    reader = PdfReader(pdf)
+    w, h = (float(x) for x in reader.pages[0].mediabox.upper_right)
+    assert (round(w), round(h)) == {"A4": (595, 842), "letter": (612, 792)}[paper]
+    text = "\n".join(p.extract_text() for p in reader.pages)
+    words = set(text.split())
+    results = pd.read_csv(out / "campaign_results.csv", keep_default_na=False, na_values=[""])
+    for _, row in results[results["row"] == "campaign"].iterrows():
+        for v in (fmt_int(row["users_seen"]), fmt_int(row["users_unseen"]), fmt_pct(row["lift"])):
+            assert v in words, (paper, row["campaign"], v)
+        name = str(row["campaign"]).lstrip("'")
+        if name.isascii() and "<" not in name:  # the hostile name is checked for escaping elsewhere
+            joined = re.sub(r"([-_./])\s*\n", r"\1", text)
+            assert name in joined, (paper, name)
+    for header in ("P(lift", "P(paid"):  # the last column of each results table
+        assert header in text, (paper, header)
+
+
+def _overlaps(boxes):
+    return [(i, j) for i in range(len(boxes)) for j in range(i + 1, len(boxes)) if boxes[i].overlaps(boxes[j])]
+
+
+def test_figure_labels_and_ticks_never_overlap(small, monkeypatch):
+    # matplotlib's own layout: every name placed in the shrinkage and naive-to-corrected figures, and
+    # every tick label of the lift axes, has a bounding box clear of the others
+    from liftpool.reports import build_tables
+    from liftpool.reports import figures as F
+
+    fit, _, spend, _ = small
+    drawn = {}
+
+    def keep(fig):
+        drawn[fig.axes[0].get_title()[:20]] = fig
+        return b""
+
+    monkeypatch.setattr(F, "png_bytes", keep)
+    F.make_figures(build_tables(fit, spend=spend))
+    assert len(drawn) >= 4
+    for title, fig in drawn.items():
+        renderer = fig.canvas.get_renderer()
+        fig.draw(renderer)
+        for ax in fig.axes:
+            names = [a.get_window_extent(renderer) for a in ax.texts if a.get_text()]
+            assert not _overlaps(names), (title, [a.get_text() for a in ax.texts])
+            for labels in (ax.get_xticklabels(), ax.get_yticklabels()):
+                boxes = [t.get_window_extent(renderer) for t in labels if t.get_text() and t.get_visible()]
+                assert not _overlaps(boxes), (title, [t.get_text() for t in labels])
+    # the shrinkage figure names its campaigns (those it can place), the steps figure all of them
+    steps = next(f for t, f in drawn.items() if t.startswith("From naive"))
+    assert len([a for a in steps.axes[0].texts if a.get_text()]) == len(fit.idata.posterior.campaign)

@@ -51,7 +51,7 @@ def test_a_fit_at_90_rendered_at_50_shows_only_50_percent_intervals(demo_fit, tm
         lo, hi = np.quantile(lift, [0.25, 0.75])
         ilo, ihi = np.quantile(inc, [0.25, 0.75])
         # the table's main interval and the paragraph's, both at 50%
-        assert f"{fmt_pct(lo)}\u00a0to {fmt_pct(hi)}" in html
+        assert f"{fmt_pct(lo)}\u00a0to</span> <span class=\"nw\">{fmt_pct(hi)}" in html
         assert f"({fmt_pct(lo)} to {fmt_pct(hi)})" in text
         assert f"(50% interval {fmt_int(ilo)} to {fmt_int(ihi)})" in text
     inc = post["incremental_conversions"].values.sum(axis=-1).ravel()
