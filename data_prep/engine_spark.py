@@ -134,6 +134,31 @@ class _Result:
         return {c: d[c].to_numpy() for c in d.columns}
 
 
+#: Spark SQL types of pandas dtype kinds (anything else travels as text).
+_SPARK_TYPES = {"i": "bigint", "u": "bigint", "f": "double", "b": "boolean", "M": "timestamp"}
+
+
+def _spark_schema(df: pd.DataFrame) -> str:
+    return ", ".join(f"`{c}` {_SPARK_TYPES.get(df[c].dtype.kind, 'string')}" for c in df.columns)
+
+
+def _plain_rows(df: pd.DataFrame) -> list[tuple]:
+    """The rows as Python values: missing values as None, text columns as str."""
+    cols = []
+    for c in df.columns:
+        s = df[c]
+        kind = s.dtype.kind
+        if kind == "M":
+            s = s.dt.tz_convert("UTC").dt.tz_localize(None) if s.dt.tz is not None else s  # the session's UTC
+            vals = [None if pd.isna(v) else v.to_pydatetime() for v in s]
+        elif kind in _SPARK_TYPES:
+            vals = [None if pd.isna(v) else v.item() if hasattr(v, "item") else v for v in s.astype(object)]
+        else:
+            vals = [None if v is None or (isinstance(v, float) and v != v) else str(v) for v in s.astype(object)]
+        cols.append(vals)
+    return list(zip(*cols, strict=True)) if cols else []
+
+
 class SparkConnection:
     """A DuckDB-connection look-alike that runs each statement on Spark.
 
@@ -179,9 +204,12 @@ class SparkConnection:
         return _Result(self.spark.sql(to_spark_sql(sql)))
 
     def register(self, name: str, df: pd.DataFrame) -> None:
-        """Make a small pandas table (e.g. a key map) visible to SQL as ``name``."""
-        sdf = self.spark.createDataFrame(df) if len(df) else self.spark.createDataFrame(
-            [], ",".join(f"{c} string" for c in df.columns))
+        """Make a small pandas table (e.g. a key map) visible to SQL as ``name``.
+
+        Passed as plain rows with a schema from the dtypes, not through PySpark's pandas conversion:
+        that path does not support pandas 3 yet (it says so with a FutureWarning on every call).
+        """
+        sdf = self.spark.createDataFrame(_plain_rows(df), _spark_schema(df))
         sdf.createOrReplaceTempView(name)
         self._frames[name] = sdf
 

@@ -34,19 +34,28 @@ def kernel(curves, terms, mu_b, sd_b, off, sd, outer=True, grad=False, nodes=Non
                          xo, lwo, xi, lwi, grad, trunc)
 
 
-def brute_force(curves, terms, c, mu_b, sd_b, off, sd, n=1601):
-    """log int N(b | mu_b, sd_b) prod_i int exp(curve_i(b + off_i + r)) N(r | 0, sd_i) dr db, trapezoid sums."""
-    lo, hi = terms.start[c], terms.start[c + 1]
-    b = np.linspace(mu_b - 8 * sd_b, mu_b + 8 * sd_b, n)
-    logf = stats.norm.logpdf(b, mu_b, sd_b)
-    for i in range(lo, hi):
-        r = np.linspace(-8 * sd[i], 8 * sd[i], n)
-        ll = curves.evaluate(b[:, None] + off[i] + r[None, :], np.full((n, n), terms.pair[i]))
+def log_density(curves, terms, c, b, log_prior, off, sd, n_r=801):
+    """log of N-prior(b) prod_i int exp(curve_i(b + off_i + r)) N(r | 0, sd_i) dr on the grid ``b``
+    (each residual integral a trapezoid sum over +-8 sd)."""
+    logf = np.array(log_prior, dtype=float)
+    for i in range(terms.start[c], terms.start[c + 1]):
+        r = np.linspace(-8 * sd[i], 8 * sd[i], n_r)
+        ll = curves.evaluate(b[:, None] + off[i] + r[None, :], np.full((b.size, r.size), terms.pair[i]))
         w = ll + stats.norm.logpdf(r, 0, sd[i])[None, :]
         mx = w.max(axis=1, keepdims=True)
-        logf += (mx[:, 0] + np.log(np.trapezoid(np.exp(w - mx), r, axis=1)))
+        logf += mx[:, 0] + np.log(np.trapezoid(np.exp(w - mx), r, axis=1))
+    return logf
+
+
+def log_trapezoid(logf, x):
     mx = logf.max()
-    return mx + np.log(np.trapezoid(np.exp(logf - mx), b))
+    return mx + np.log(np.trapezoid(np.exp(logf - mx), x))
+
+
+def brute_force(curves, terms, c, mu_b, sd_b, off, sd, n=1601):
+    """log int N(b | mu_b, sd_b) prod_i int exp(curve_i(b + off_i + r)) N(r | 0, sd_i) dr db, trapezoid sums."""
+    b = np.linspace(mu_b - 8 * sd_b, mu_b + 8 * sd_b, n)
+    return log_trapezoid(log_density(curves, terms, c, b, stats.norm.logpdf(b, mu_b, sd_b), off, sd, n), b)
 
 
 @pytest.mark.parametrize("shape", ["sparse", "zero_arm", "one_cell"])
@@ -67,18 +76,10 @@ def brute_force_truncated(curves, terms, c, mu_b, sd_b, off, sd, n=4001):
     """The same integral with the bias's prior N(mu_b, sd_b) cut at 0 (not renormalized, as in the kernel),
     by a trapezoid sum over v with b = softplus(v): a change of variable that puts a fine grid where the
     density piles up against the bound."""
-    lo, hi = terms.start[c], terms.start[c + 1]
     v = np.linspace(-25.0, 6.0, n)
     b = np.logaddexp(0.0, v)
-    logf = stats.norm.logpdf(b, mu_b, sd_b) - np.logaddexp(0.0, -v)  # + log d softplus / dv
-    for i in range(lo, hi):
-        r = np.linspace(-8 * sd[i], 8 * sd[i], 801)
-        ll = curves.evaluate(b[:, None] + off[i] + r[None, :], np.full((n, r.size), terms.pair[i]))
-        w = ll + stats.norm.logpdf(r, 0, sd[i])[None, :]
-        mx = w.max(axis=1, keepdims=True)
-        logf += (mx[:, 0] + np.log(np.trapezoid(np.exp(w - mx), r, axis=1)))
-    mx = logf.max()
-    return mx + np.log(np.trapezoid(np.exp(logf - mx), v))
+    log_prior = stats.norm.logpdf(b, mu_b, sd_b) - np.logaddexp(0.0, -v)  # + log d softplus / dv
+    return log_trapezoid(log_density(curves, terms, c, b, log_prior, off, sd), v)
 
 
 @pytest.mark.parametrize("shape", ["sparse", "zero_arm", "one_cell"])
@@ -134,15 +135,8 @@ def test_bias_draws_follow_the_exact_conditional():
     sd = np.where(terms.is_target, np.hypot(0.2, 0.1), 0.1)
     for c in range(3):
         # the exact conditional density of b_c on a dense grid (trapezoid), its quantiles
-        lo, hi = terms.start[c], terms.start[c + 1]
         b = np.linspace(0.2 - 2.4, 0.2 + 2.4, 2401)
-        logf = stats.norm.logpdf(b, 0.2, 0.3)
-        for i in range(lo, hi):
-            r = np.linspace(-8 * sd[i], 8 * sd[i], 801)
-            w = curves.evaluate(b[:, None] + off[i] + r[None, :], np.full((b.size, r.size), terms.pair[i]))
-            w = w + stats.norm.logpdf(r, 0, sd[i])[None, :]
-            mx = w.max(axis=1, keepdims=True)
-            logf += mx[:, 0] + np.log(np.trapezoid(np.exp(w - mx), r, axis=1))
+        logf = log_density(curves, terms, c, b, stats.norm.logpdf(b, 0.2, 0.3), off, sd)
         pdf = np.exp(logf - logf.max())
         cdf = np.cumsum(pdf)
         cdf /= cdf[-1]
@@ -167,15 +161,8 @@ def test_truncated_bias_draws_follow_the_exact_conditional():
     off = np.where(terms.is_target, 0.15, 0.0)
     sd = np.where(terms.is_target, np.hypot(0.2, 0.1), 0.1)
     for c in range(4):
-        lo, hi = terms.start[c], terms.start[c + 1]
         b = np.linspace(0.0, 1.6, 3201)
-        logf = stats.norm.logpdf(b, 0.05, 0.2)
-        for i in range(lo, hi):
-            r = np.linspace(-8 * sd[i], 8 * sd[i], 801)
-            w = curves.evaluate(b[:, None] + off[i] + r[None, :], np.full((b.size, r.size), terms.pair[i]))
-            w = w + stats.norm.logpdf(r, 0, sd[i])[None, :]
-            mx = w.max(axis=1, keepdims=True)
-            logf += mx[:, 0] + np.log(np.trapezoid(np.exp(w - mx), r, axis=1))
+        logf = log_density(curves, terms, c, b, stats.norm.logpdf(b, 0.05, 0.2), off, sd)
         pdf = np.exp(logf - logf.max())
         cdf = np.concatenate([[0.0], np.cumsum((pdf[1:] + pdf[:-1]) / 2)])
         cdf /= cdf[-1]

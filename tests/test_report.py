@@ -180,7 +180,10 @@ def test_not_converged_is_on_the_first_screen(tmp_path):
             ("a", "all", "seen", "p", "placebo", 1000, 25), ("a", "all", "unseen", "p", "placebo", 1000, 20),
             ("b", "all", "seen", "t2", "target", 900, 25), ("b", "all", "unseen", "t2", "target", 900, 20)]
     counts = pd.DataFrame(rows, columns=["campaign", "cell", "arm", "outcome", "role", "users", "conversions"])
-    fit = fit_counts(counts, ModelSettings(chains=2, draws=20, tune=20, seed=1))
+    from liftpool.models.errors import LiftpoolWarning
+
+    with pytest.warns(LiftpoolWarning, match="the fit did not converge"):  # said to the caller, too
+        fit = fit_counts(counts, ModelSettings(chains=2, draws=20, tune=20, seed=1))
     assert not fit.converged
     html = (write_report(fit, tmp_path / "r") / "report.html").read_text()
     assert html.index("NOT CONVERGED") < html.index("<h2>Summary</h2>")
