@@ -281,3 +281,44 @@ def test_one_rule_decides_could_be_zero_and_small_sample_for_every_campaign(demo
         seen_zero += lo <= 0
         seen_small += n < SMALL_SAMPLE_CONVERSIONS
     assert 0 < seen_zero < len(paras) or seen_small > 0  # the demo exercises at least one caution
+
+
+def test_without_an_unexposed_arm_nothing_claims_a_naive_lift(monkeypatch):
+    # counts with seen and unseen users only: no naive comparison exists, so neither the chart's title
+    # nor the table may name one
+    from liftpool.reports import figures as F
+    from liftpool.reports.html import _lift_table
+
+    rows = []
+    for camp, (x1, x0) in {"a": (60, 40), "b": (55, 45), "c": (70, 50)}.items():
+        for cell in ("c1", "c2"):
+            for o, role, k in (("buy", "target", 1.0), ("visit", "placebo", 0.8)):
+                rows += [(camp, cell, "seen", o, role, 2000, round(x1 * k)), (camp, cell, "unseen", o, role, 2000,
+                                                                              round(x0 * k))]
+    counts = pd.DataFrame(rows, columns=["campaign", "cell", "arm", "outcome", "role", "users", "conversions"])
+    fit = fit_counts(counts, ModelSettings(seed=3), quick=True)
+    t = build_tables(fit)
+    titles = []
+    monkeypatch.setattr(F, "png_bytes", lambda fig: titles.append(fig.axes[0].get_title()) or b"")
+    F.make_figures(t)
+    lift_title = next(x for x in titles if x.startswith("Lift by campaign"))
+    assert lift_title == "Lift by campaign: uncorrected and bias-corrected"
+    assert "naive" not in _lift_table(t)
+
+
+def test_compare_keeps_a_small_change_of_bias_small(monkeypatch):
+    # two fits of nearly the same data: the bias axis spans at least MIN_BIAS_SPAN log odds, so a change
+    # of a hundredth does not fill the panel
+    from liftpool.reports import compare as C
+
+    data = simulate(seed=5, scale=0.1)
+    res = prepare_counts(data["impressions"], data["conversions"], data["outcomes"])
+    a = fit_counts(res.counts, ModelSettings(seed=1), quick=True)
+    b = fit_counts(res.counts, ModelSettings(seed=2), quick=True)
+    figs = []
+    monkeypatch.setattr(C, "png_bytes", lambda fig: figs.append(fig) or b"")
+    table, _ = C.compare_fits(a, b, "A", "B")
+    lo, hi = figs[0].axes[1].get_xlim()
+    assert hi - lo >= C.MIN_BIAS_SPAN - 1e-12
+    moved = table.filter(like="bias median").to_numpy(float)
+    assert np.nanmax(moved) - np.nanmin(moved) < 0.5 * (hi - lo)
