@@ -12,6 +12,8 @@ from pathlib import Path
 
 import pytest
 
+pytestmark = pytest.mark.slow  # mounts, a preparation and fits (CI runs it)
+
 
 def run(*args):
     return subprocess.run([sys.executable, "-m", "liftpool", *map(str, args)], capture_output=True, text=True)

@@ -124,6 +124,7 @@ def test_width_curve_is_monotone_per_placebo_count():
         assert (g["width"] >= g["floor_width"] - 1e-12).all()
 
 
+@pytest.mark.slow  # simulated data sets fitted one by one (CI runs it)
 @pytest.mark.parametrize("kw", [
     dict(users=50_000, **NO_BIAS),
     dict(users=400_000, bias_sd=0.0, residual_sd=0.05, placebos=12, bias_mean=0.2),
@@ -140,6 +141,7 @@ def test_simulation_through_quick_mode_agrees_with_analytic(kw):
     assert sim["coverage"] >= 0.8
 
 
+@pytest.mark.slow  # simulated data sets fitted one by one (CI runs it)
 def test_simulation_shows_the_floor():
     # at 100x the users the simulated width stays near the analytic floor instead of shrinking 10x
     inp = PlanInputs(users=4e7, baseline_rate=0.01, lift=0.1, bias_sd=0.0, residual_sd=0.05, placebos=12)

@@ -10,6 +10,8 @@ from liftpool.data_prep import prepare_counts, simulate
 from liftpool.models import fit_counts
 from liftpool.models.calibration import leave_one_placebo_out
 
+pytestmark = pytest.mark.slow  # many quick fits of simulated portfolios (CI runs it)
+
 SEEDS = [101, 202, 303, 404]
 
 

@@ -4,10 +4,13 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
+import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from liftpool.data_prep import CountingRules, prepare_counts
+
+pytestmark = pytest.mark.slow  # many preparations of random logs, three engines (CI runs it)
 
 T0 = pd.Timestamp("2026-03-01T00:00:00Z")
 RULES = CountingRules(covariates=("frequency",), min_cell_users=1)
