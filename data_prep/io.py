@@ -22,6 +22,13 @@ __all__ = ["atomic_path", "atomic_folder", "ensure_room", "ROOM_MARGIN_BYTES", "
            "input_sha256", "spreadsheet_safe", "FORMULA_STARTS"]
 
 
+def _umask() -> int:
+    """The process's umask (read by setting it and putting it back)."""
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
 @contextlib.contextmanager
 def atomic_path(path: str | os.PathLike) -> Iterator[Path]:
     """Yield a temporary path beside ``path``; on success rename it over ``path``.
@@ -36,9 +43,7 @@ def atomic_path(path: str | os.PathLike) -> Iterator[Path]:
     tmp_path = Path(tmp)
     try:
         yield tmp_path
-        mask = os.umask(0)
-        os.umask(mask)
-        os.chmod(tmp_path, 0o666 & ~mask)
+        os.chmod(tmp_path, 0o666 & ~_umask())
         os.replace(tmp_path, path)
     finally:
         if tmp_path.exists():
@@ -57,9 +62,7 @@ def atomic_folder(path: str | os.PathLike) -> Iterator[Path]:
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent))
-    mask = os.umask(0)
-    os.umask(mask)
-    os.chmod(tmp, 0o777 & ~mask)
+    os.chmod(tmp, 0o777 & ~_umask())
     try:
         yield tmp
         if path.exists():

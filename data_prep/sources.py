@@ -19,6 +19,7 @@ import duckdb
 import pandas as pd
 
 from liftpool.data_prep.errors import BadRow, InputError
+from liftpool.data_prep.rules import CountingRules
 
 __all__ = [
     "Column",
@@ -438,7 +439,7 @@ def _typed_view(con, table: Table, columns: list[Column], id_type: str, extra_se
     con.execute(f"CREATE OR REPLACE VIEW {table.view} AS SELECT {select} FROM {table.raw}").fetchall()
 
 
-def _duplicates(con, table: Table, keys: list[str], problem: str, fix: str, column: str | None = None) -> None:
+def _duplicates(con, table: Table, keys: list[str], problem: str, fix: str) -> None:
     """Raise when rows repeat the same ``keys``: a cheap grouped count first, the rows only when needed."""
     k = ", ".join(_q(x) for x in keys)
     n = con.execute(f"SELECT count(*) FROM (SELECT {k} FROM {table.raw} GROUP BY {k} HAVING count(*) > 1)").fetchall()[0][0]
@@ -448,9 +449,8 @@ def _duplicates(con, table: Table, keys: list[str], problem: str, fix: str, colu
         f"SELECT rn, {k} FROM (SELECT row_number() OVER () AS rn, {k}, count(*) OVER (PARTITION BY {k}) AS n "
         f"FROM {table.raw}) WHERE n > 1 ORDER BY rn LIMIT 5"
     ).fetchall()
-    shown = (lambda r: ", ".join(repr(v) for v in r[1:])) if len(keys) <= 3 else (lambda r: "repeats another row")
-    raise InputError(problem=problem.format(n=n), file=table.label, column=column or ", ".join(keys),
-                     rows=[BadRow(int(r[0]), shown(r)) for r in rows], fix=fix)
+    raise InputError(problem=problem.format(n=n), file=table.label, column=", ".join(keys),
+                     rows=[BadRow(int(r[0]), ", ".join(repr(v) for v in r[1:])) for r in rows], fix=fix)
 
 
 def open_inputs(
@@ -461,7 +461,7 @@ def open_inputs(
     spend=None,
     covariates: tuple[str, ...] = (),
     con: duckdb.DuckDBPyConnection | None = None,
-    large_ad_pixels: int = 242_500,
+    large_ad_pixels: int = CountingRules.large_ad_pixels,
 ) -> Inputs:
     """Load and validate the inputs; raise :class:`InputError` on the first problem.
 
@@ -663,7 +663,8 @@ def _outcome_names(inputs: Inputs, listed: pd.DataFrame) -> None:
     conv = inputs.tables["conversions"]
     have = inputs.con.execute(f"SELECT outcome, count(*) AS n FROM {conv.view} GROUP BY outcome").df()
     rows_of = dict(zip(have["outcome"].astype(str), have["n"].astype(int), strict=True))
-    unlisted = [o for o in rows_of if o not in set(listed["outcome"])]
+    named = set(listed["outcome"])
+    unlisted = [o for o in rows_of if o not in named]
     out = inputs.tables["outcomes"]
     for o in listed["outcome"].drop_duplicates():
         if o in rows_of:

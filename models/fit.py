@@ -500,10 +500,10 @@ def uses_collapsed(d: Design, s: ModelSettings) -> bool:
 def _population_starts(qcore: dict, model, s: ModelSettings) -> list[dict]:
     """One start per chain for the collapsed model: a quick-mode draw of the population parameters."""
     names = {v.name for v in model.free_RVs}
+    positive = {v.name for v in model.free_RVs if model.rvs_to_transforms.get(v) is not None}
     out = []
     for c in range(s.chains):
         i = _start_draw(c, qcore)
-        positive = {v.name for v in model.free_RVs if model.rvs_to_transforms.get(v) is not None}
         out.append({k: (max(abs(float(qcore[k][i])), 1e-3) if k in positive else float(qcore[k][i]))
                     for k in ("bias_mean", "bias_sd", "residual_sd", "lift_mean", "lift_sd") if k in names})
     return out

@@ -67,9 +67,10 @@ def _spaced_ticks(ax, candidates, axis: str = "x", min_gap_in: float = MIN_TICK_
     pts = [ax.transData.transform((v, 0) if axis == "x" else (0, v))[0 if axis == "x" else 1] / dpi for v in vals]
     kept, last = [], None
     for v, pt in zip(vals, pts, strict=True):
-        if last is None or abs(pt - last) >= min_gap_in or v == 0:
-            if kept and abs(pt - last) < min_gap_in:  # 0 always shows: it replaces a crowding neighbour
-                kept.pop()
+        crowded = last is not None and abs(pt - last) < min_gap_in
+        if crowded and v == 0:  # 0 always shows: it replaces the neighbour it crowds
+            kept.pop()
+        if not crowded or v == 0:
             kept.append(v)
             last = pt
     return kept
