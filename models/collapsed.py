@@ -585,7 +585,7 @@ def campaign_draws(design, curves: CurveSet, s: ModelSettings, post: dict, rng: 
             rho = f + xo**2  # the integrand over its Gaussian envelope: smooth, so interpolated
             logd = -zb**2 + rho @ L.T
             centred = m + half * _grid_draw(zb, logd, rng)
-            if trunc:  # v to b = kappa g(v)
+            if trunc:  # v to b = kappa g(v), the vectorized twin of the kernel's _half_line
                 centred = np.maximum(centred, -30.0)
                 centred = kap * (centred * special.ndtr(centred) + np.exp(-0.5 * centred**2) / np.sqrt(2 * np.pi))
             bias[sl] = centred
