@@ -4,8 +4,9 @@ Every table follows one generative story, the model's own::
 
     cell k of pair (c, o):   baseline a ~ N(logit(rate), baseline_sd)
     unseen users convert at  logit^-1(a)
-    seen users convert at    logit^-1(a + b_c + r_co + lift_c [target only])
+    seen users convert at    logit^-1(a + b_c + r_co + [target only] (e_c + lift_c))
     b_c ~ N(bias_mean, bias_sd),  r_co ~ N(0, residual_sd),  lift_c ~ N(lift_mean, lift_sd)
+    e_c ~ N(excess_mean, excess_sd)   (the target's own bias beyond its placebos'; 0 by default)
 
 and the shapes vary what real portfolios vary: the number of campaigns, of cells per pair and of
 placebo outcomes per campaign, campaigns without placebos, placebo outcomes shared by every
@@ -20,7 +21,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 import pandas as pd
 
-__all__ = ["Shape", "SHAPES", "shape_counts", "scaled", "COUNT_COLUMNS"]
+__all__ = ["Shape", "SHAPES", "shape_counts", "shape_experiments", "scaled", "COUNT_COLUMNS"]
 
 COUNT_COLUMNS = ["campaign", "cell", "arm", "outcome", "role", "users", "conversions"]
 
@@ -49,6 +50,12 @@ class Shape:
         Share of a cell's users who saw an ad.
     zero_arm : bool
         Add a tiny cell to the first campaign's target with no unseen conversions.
+    excess_mean, excess_sd : float
+        The target's excess bias beyond its placebos' (log odds), drawn per campaign.
+    tested : int
+        How many campaigns (the first ones) have a randomized test (:func:`shape_experiments`).
+    test_se : float
+        Each test's standard error on the log scale.
     """
 
     name: str
@@ -67,6 +74,10 @@ class Shape:
     lift_mean: float = 0.15
     lift_sd: float = 0.1
     baseline_sd: float = 0.3
+    excess_mean: float = 0.0
+    excess_sd: float = 0.0
+    tested: int = 0
+    test_se: float = 0.05
 
 
 #: The suite: every shape a held-out portfolio might have (docs/validation.md).
@@ -97,13 +108,14 @@ def shape_counts(shape: Shape | str, seed: int = 0) -> tuple[pd.DataFrame, pd.Da
     counts : DataFrame
         ``campaign, cell, arm, outcome, role, users, conversions``.
     truth : DataFrame
-        ``campaign, lift_logodds, bias`` (the true lift and bias of each campaign).
+        ``campaign, lift_logodds, bias, excess`` (the true lift, placebo bias and target excess bias).
     """
     sh = SHAPES[shape] if isinstance(shape, str) else shape
     rng = np.random.default_rng(seed)
     C = sh.campaigns
     bias = rng.normal(sh.bias_mean, sh.bias_sd, C)
     lift = rng.normal(sh.lift_mean, sh.lift_sd, C)
+    excess = rng.normal(sh.excess_mean, sh.excess_sd, C) if (sh.excess_mean or sh.excess_sd) else np.zeros(C)
     width = len(str(C - 1))
     names = [f"camp{c:0{width}d}" for c in range(C)]
     rows = []
@@ -113,7 +125,7 @@ def shape_counts(shape: Shape | str, seed: int = 0) -> tuple[pd.DataFrame, pd.Da
         outcomes += [((f"placebo{j}" if sh.shared_placebos else f"{names[c]}_placebo{j}"), "placebo")
                      for j in range(n_pl)]
         for out, role in outcomes:
-            eff = bias[c] + rng.normal(0.0, sh.residual_sd) + (lift[c] if role == "target" else 0.0)
+            eff = bias[c] + rng.normal(0.0, sh.residual_sd) + (lift[c] + excess[c] if role == "target" else 0.0)
             k_n = int(rng.integers(sh.cells[0], sh.cells[1] + 1))
             total = np.exp(rng.uniform(np.log(sh.users[0]), np.log(sh.users[1])))
             share = rng.dirichlet(np.full(k_n, 2.0))
@@ -131,8 +143,29 @@ def shape_counts(shape: Shape | str, seed: int = 0) -> tuple[pd.DataFrame, pd.Da
                 rows += [(names[c], "tiny", "seen", out, role, 60, int(rng.binomial(60, 0.03))),
                          (names[c], "tiny", "unseen", out, role, 30, 0)]
     counts = pd.DataFrame(rows, columns=COUNT_COLUMNS)
-    truth = pd.DataFrame({"campaign": names, "lift_logodds": lift, "bias": bias})
+    truth = pd.DataFrame({"campaign": names, "lift_logodds": lift, "bias": bias, "excess": excess})
     return counts, truth
+
+
+def shape_experiments(shape: Shape | str, truth: pd.DataFrame, seed: int = 0) -> pd.DataFrame:
+    """Randomized tests of the first ``shape.tested`` campaigns: each measures the true lift with error.
+
+    The test's log lift is ``lift_logodds + N(0, test_se)``, written as a relative lift among the
+    exposed (``measures = "exposed"``) with the delta-method standard error, so the tests reader's
+    conversion returns exactly that log lift and ``test_se``.
+
+    Returns
+    -------
+    DataFrame
+        ``campaign, estimate, std_error, measures`` (the tests file's columns).
+    """
+    sh = SHAPES[shape] if isinstance(shape, str) else shape
+    rng = np.random.default_rng(seed + 7919)
+    t = truth.iloc[: sh.tested]
+    y = t["lift_logodds"].to_numpy() + rng.normal(0.0, sh.test_se, len(t))
+    est = np.expm1(y)
+    return pd.DataFrame({"campaign": t["campaign"].to_numpy(), "estimate": est, "std_error": sh.test_se * (1.0 + est),
+                         "measures": "exposed"})
 
 
 def scaled(shape: Shape | str, **changes) -> Shape:

@@ -44,6 +44,14 @@ from scipy import special
 
 from liftpool.models.completion import lift_spread
 from liftpool.models.conditional import CurveSet
+from liftpool.models.evidence import (
+    CampaignTests,
+    campaign_tests,
+    excess_active,
+    lift_given_tests,
+    normal_update,
+    tests_loglik,
+)
 from liftpool.models.settings import ModelSettings
 
 __all__ = ["build_collapsed_model", "population_lift", "CampaignLoglik", "CampaignTerms", "campaign_terms", "campaign_draws", "OUTER_NODES",
@@ -60,7 +68,7 @@ OUTER_STEPS = 3
 TRUNC_EXTRA_STEPS = 2
 #: The population-level variables the collapsed sampler moves in (when present).
 POPULATION_VARS = ("bias_mean", "bias_sd", "residual_sd", "lift_mean", "lift_sd", "group_sd", "group_effect",
-                   "outcome_bias_sd", "outcome_bias")
+                   "outcome_bias_sd", "outcome_bias", "excess_mean", "excess_sd")
 LOG_SQRT_2PI = 0.5 * np.log(2 * np.pi)
 #: Grid of the completion draws (points over the outer nodes' span; points over +-GRID_REACH sd for x).
 B_GRID = 97
@@ -409,7 +417,7 @@ def _pair_inputs(terms: CampaignTerms, centre, tau, sr, ob):
     return off, sd
 
 
-def build_collapsed_model(design, curves: CurveSet, s: ModelSettings) -> pm.Model:
+def build_collapsed_model(design, curves: CurveSet, s: ModelSettings, tests: CampaignTests | None = None) -> pm.Model:
     """The PyMC model of the population-level parameters with every campaign's effects integrated.
 
     Parameters
@@ -420,9 +428,13 @@ def build_collapsed_model(design, curves: CurveSet, s: ModelSettings) -> pm.Mode
         With ``bias_sign="nonnegative"`` each campaign's bias is N(bias_mean, bias_sd) truncated at 0,
         with ``bias_mean >= 0`` (the location of that normal, not the biases' mean): the kernel
         integrates it over its half-line and the truncation's normalizing constant enters here.
+    tests : CampaignTests, optional
+        Randomized tests (:mod:`liftpool.models.evidence`): each pins its campaign's lift; with
+        them the target's excess bias (``excess_mean``, ``excess_sd``) is learned.
     """
     d = design
     terms = campaign_terms(d, curves)
+    tests = tests if tests is not None else campaign_tests(d.campaigns, None)
     coords = {"campaign": d.campaigns, "outcome": d.outcomes}
     if d.groups:
         coords["group"] = d.groups
@@ -451,8 +463,20 @@ def build_collapsed_model(design, curves: CurveSet, s: ModelSettings) -> pm.Mode
             ob_sd = pm.HalfNormal("outcome_bias_sd", s.outcome_bias_sd_scale)
             oz = pm.Normal("outcome_bias_z", 0.0, 1.0, dims="outcome")
             ob = pm.Deterministic("outcome_bias", ob_sd * oz, dims="outcome")
-        tau = pt.sqrt(lift_sd**2 + residual_sd**2)
-        off, sd = _pair_inputs(terms, centre, tau, residual_sd, ob)
+        mu_e, sd_e = pt.as_tensor(0.0), pt.as_tensor(0.0)
+        if excess_active(s, tests):
+            mu_e = pm.Normal("excess_mean", 0.0, s.excess_mean_scale)
+            sd_e = pm.HalfNormal("excess_sd", s.excess_sd_scale)
+        if tests.n_tested:
+            pm.Potential("tests_loglik", tests_loglik(centre, lift_sd, tests, log=pt.log))
+        # the target's excess over b: lift (given its tests) + excess bias + its own residual
+        m_l, v_l = centre, lift_sd**2
+        if tests.n_tested:  # only the tested campaigns' entries change (no arithmetic with zero masks in the graph)
+            idx = np.flatnonzero(tests.has > 0)
+            m_t, v_t = normal_update(centre[idx], v_l[idx], tests.y[idx], tests.se2[idx])
+            m_l, v_l = pt.set_subtensor(m_l[idx], m_t), pt.set_subtensor(v_l[idx], v_t)
+        tau = pt.sqrt(v_l + residual_sd**2 + sd_e**2)
+        off, sd = _pair_inputs(terms, m_l + mu_e, tau, residual_sd, ob)
         ll = CampaignLoglik(curves, terms, outer=True, trunc=trunc)(mu_b, sd_b, off, sd)[0]
         pm.Potential("campaign_loglik", ll)
     return model
@@ -524,7 +548,8 @@ def _grid_draw(z: np.ndarray, logd: np.ndarray, rng: np.random.Generator) -> np.
     return z[j] + np.clip(t, 0.0, 1.0) * dz[j]
 
 
-def campaign_draws(design, curves: CurveSet, s: ModelSettings, post: dict, rng: np.random.Generator) -> dict:
+def campaign_draws(design, curves: CurveSet, s: ModelSettings, post: dict, rng: np.random.Generator,
+                   tests: CampaignTests | None = None) -> dict:
     """Complete population-level draws with each campaign's ``bias`` and ``target_excess``.
 
     ``b_c`` is drawn from its conditional density given the draw's population parameters (the outer
@@ -557,7 +582,14 @@ def campaign_draws(design, curves: CurveSet, s: ModelSettings, post: dict, rng: 
         cg = np.maximum(d.campaign_group, 0)
         centre = centre + np.where(d.campaign_group >= 0, post["group_effect"][:, cg], 0.0)
     sr = post["residual_sd"] if corrected else np.zeros(D)
-    tau = np.sqrt(spread**2 + sr[:, None] ** 2)  # (D, C)
+    tests = tests if tests is not None else campaign_tests(d.campaigns, None)
+    if corrected:  # the target's excess over b: lift given its tests, plus the excess bias and residual
+        m_l, v_l = lift_given_tests(centre, spread, tests)
+        sde2 = post["excess_sd"] ** 2 if "excess_sd" in post else np.zeros(D)
+        centre = m_l + (post["excess_mean"][:, None] if "excess_mean" in post else 0.0)
+        tau = np.sqrt(v_l + sr[:, None] ** 2 + sde2[:, None])  # (D, C)
+    else:
+        tau = spread
     ob = post.get("outcome_bias") if s.outcome_bias else None
     terms = campaign_terms(d, curves)
     tb = _tables(curves)

@@ -139,7 +139,7 @@ def rate_quantities(t, C, psi, lift, rng, chunk=256):
                 "counterfactual_conversions": out["without"]}
 
 
-def complete_draws(design, cells, curves, core: dict, rng: np.random.Generator) -> dict[str, np.ndarray]:
+def complete_draws(design, cells, curves, core: dict, rng: np.random.Generator, tests=None) -> dict[str, np.ndarray]:
     """Every reported quantity from the core draws (each array with draws on the first axis).
 
     Parameters
@@ -150,14 +150,21 @@ def complete_draws(design, cells, curves, core: dict, rng: np.random.Generator) 
     core : dict
         ``target_excess, bias`` (D, C); ``lift_mean, lift_sd, residual_sd`` (D,) where sampled;
         optional ``group_effect`` (D, G) and ``outcome_bias`` (D, O); flags ``corrected``, ``single``
-        and the fixed prior scales ``lift_mean_scale`` (used for a single campaign).
+        and the fixed prior scales ``lift_mean_scale`` (used for a single campaign); ``excess_mean``,
+        ``excess_sd`` (D,) when the target's excess bias is a model term.
+    tests : CampaignTests, optional
+        Randomized tests (:mod:`liftpool.models.evidence`): a tested campaign's lift prior is its
+        normal update given them.
 
     Returns
     -------
     dict
         ``lift_logodds, bias_target, lift, lift_uncorrected, incremental_conversions,
-        counterfactual_conversions`` (D, C) and ``effect`` (D, P).
+        counterfactual_conversions`` (D, C), ``effect`` (D, P), and ``excess_bias`` (D, C) when
+        the excess is a model term.
     """
+    from liftpool.models.evidence import campaign_tests, lift_given_tests
+
     x = core["target_excess"]
     D, C = x.shape
     corrected, single = core["corrected"], core["single"]
@@ -172,10 +179,18 @@ def complete_draws(design, cells, curves, core: dict, rng: np.random.Generator) 
         if "group_effect" in core:
             g = design.campaign_group
             centre = centre + np.where(g >= 0, core["group_effect"][:, np.maximum(g, 0)], 0.0)
+    excess = None
     if corrected:
-        sr = core["residual_sd"]
-        lift = split_lift(x, centre, lift_sd if lift_sd.ndim == 2 else lift_sd[:, None], sr[:, None],
-                          rng.standard_normal((D, C)))
+        sr = core["residual_sd"][:, None]
+        tests = tests if tests is not None else campaign_tests(list(design.campaigns), None)
+        m_l, v_l = lift_given_tests(centre, lift_sd if lift_sd.ndim == 2 else lift_sd[:, None], tests)
+        # x = lift + u, u = excess bias + the target's residual ~ N(excess_mean, excess_sd^2 + residual_sd^2)
+        mu_e = core["excess_mean"][:, None] if "excess_mean" in core else np.zeros((D, 1))
+        sde = core["excess_sd"][:, None] if "excess_sd" in core else np.zeros((D, 1))
+        lift = split_lift(x - mu_e, m_l, np.sqrt(v_l), np.sqrt(sr**2 + sde**2), rng.standard_normal((D, C)))
+        if "excess_mean" in core:  # the excess bias given u: the same exact split of u into its two parts
+            u = x - lift
+            excess = split_lift(u, mu_e, sde, sr, rng.standard_normal((D, C)))
         eta = core["bias"][:, design.pair_campaign]
         if "outcome_bias" in core:
             eta = eta + core["outcome_bias"][:, design.pair_outcome]
@@ -185,6 +200,8 @@ def complete_draws(design, cells, curves, core: dict, rng: np.random.Generator) 
     tp = design.target_pair()
     psi_t = eta[:, tp] + x
     out = {"lift_logodds": lift, "bias_target": psi_t - lift}
+    if excess is not None:
+        out["excess_bias"] = excess
     # placebo effects: the Gaussian approximation of r_p | b_c, residual_sd, data
     effect = np.empty_like(eta)
     effect[:, tp] = psi_t

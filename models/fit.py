@@ -21,7 +21,7 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from liftpool.data_prep.errors import InputError
+from liftpool.data_prep.errors import ConfigError, InputError
 from liftpool.data_prep.io import atomic_folder, ensure_room, write_json
 from liftpool.models.completion import complete_draws
 from liftpool.models.conditional import build_curves, cell_tables
@@ -29,7 +29,9 @@ from liftpool.models.design import CampaignFlags, Design, make_design
 from liftpool.models.diagnostics import Diagnostics, check_convergence
 from liftpool.models.errors import FitError, LiftpoolWarning
 from liftpool.models.estimands import USER_COUNTS, estimand_draws, summarize
+from liftpool.models.evidence import campaign_tests, excess_active
 from liftpool.models.gaussian import gaussian_posterior
+from liftpool.models.heldout import KHAT_LIMIT, heldout_checks
 from liftpool.models.quick import quick_fit, quick_relative
 from liftpool.models.settings import ModelSettings, default_cores
 from liftpool.models.summary import NEW_CAMPAIGN, PORTFOLIO, SUMMARY_COLUMNS, prior_lift_quantiles
@@ -39,7 +41,8 @@ __all__ = ["FitResult", "fit_counts", "load_fit", "package_versions", "choose_in
 #: Draws of the quick mode.
 QUICK_DRAWS = 4000
 #: What the convergence checks look at: the sampled core and the reported quantities.
-CHECKED_VARS = ("bias_mean", "bias_sd", "residual_sd", "lift_mean", "lift_sd", "group_sd", "outcome_bias_sd",
+CHECKED_VARS = ("bias_mean", "bias_sd", "residual_sd", "lift_mean", "lift_sd", "excess_mean", "excess_sd", "group_sd",
+                "outcome_bias_sd",
                 "bias", "target_excess", "lift_logodds", "bias_target", "lift", "lift_uncorrected",
                 "incremental_conversions")
 #: ``init="auto"`` starts PyMC's NUTS from ADVI from this many free parameters on (docs/performance.md).
@@ -78,6 +81,11 @@ class FitResult:
     estimands : Dataset
         Draws of every reported quantity by unit (campaigns and pooled rows), in natural units
         (:mod:`liftpool.models.estimands`); ``summary`` is its summary at the fit's level.
+    tests : DataFrame or None
+        The randomized tests the fit used, converted to the lift among the exposed
+        (:data:`liftpool.data_prep.experiments.TESTS_COLUMNS`).
+    heldout : DataFrame or None
+        Each test and each placebo predicted without itself (:mod:`liftpool.models.heldout`).
     """
 
     idata: az.InferenceData
@@ -89,6 +97,8 @@ class FitResult:
     info: dict = field(default_factory=dict)
     predictive: pd.DataFrame | None = None
     estimands: xr.Dataset | None = None
+    tests: pd.DataFrame | None = None
+    heldout: pd.DataFrame | None = None
 
     def __post_init__(self) -> None:
         if self.estimands is None or not all(k in self.estimands for k in USER_COUNTS):
@@ -139,6 +149,10 @@ class FitResult:
             self.estimands.to_netcdf(tmp / "estimands.nc", engine="h5netcdf", encoding=enc)
             if self.predictive is not None:
                 self.predictive.to_csv(tmp / "predictive_check.csv", index=False)
+            if self.tests is not None:
+                self.tests.to_csv(tmp / "tests.csv", index=False)
+            if self.heldout is not None:
+                self.heldout.to_csv(tmp / "heldout_check.csv", index=False)
             write_json({"mode": self.mode, "settings": self.settings.to_dict(),
                         "diagnostics": self.diagnostics.to_dict(), "flags": self.flags.to_dict(),
                         "info": self.info}, tmp / "fit.json")
@@ -255,8 +269,17 @@ def load_fit(folder: str | os.PathLike) -> FitResult:
         flags = CampaignFlags(**flags_d)
     except Exception as exc:  # noqa: BLE001
         raise broken(pc, exc) from None
+    extra = {}
+    for name, key in (("tests.csv", "tests"), ("heldout_check.csv", "heldout")):
+        f = folder / name
+        try:
+            extra[key] = (pd.read_csv(f, keep_default_na=False, na_values=[""], dtype={"campaign": str, "test": str,
+                                                                                      "item": str})
+                          if f.is_file() else None)
+        except Exception as exc:  # noqa: BLE001
+            raise broken(f, exc) from None
     return FitResult(idata=idata, summary=summary, diagnostics=diagnostics, flags=flags, settings=settings,
-                     mode=mode, info=meta.get("info", {}), predictive=predictive, estimands=estimands)
+                     mode=mode, info=meta.get("info", {}), predictive=predictive, estimands=estimands, **extra)
 
 
 @contextlib.contextmanager
@@ -505,7 +528,8 @@ def _population_starts(qcore: dict, model, s: ModelSettings) -> list[dict]:
     for c in range(s.chains):
         i = _start_draw(c, qcore)
         out.append({k: (max(abs(float(qcore[k][i])), 1e-3) if k in positive else float(qcore[k][i]))
-                    for k in ("bias_mean", "bias_sd", "residual_sd", "lift_mean", "lift_sd") if k in names})
+                    for k in ("bias_mean", "bias_sd", "residual_sd", "lift_mean", "lift_sd", "excess_mean", "excess_sd")
+                    if k in names})
     return out
 
 
@@ -562,7 +586,7 @@ def _start_draw(chain: int, qcore: dict) -> int:
 
 
 def _sample_conditional(d: Design, curves, qcore: dict, s: ModelSettings, info: dict, say, progressbar: bool,
-                        t0: float, rng: np.random.Generator):
+                        t0: float, rng: np.random.Generator, tests=None):
     """The conditional-likelihood model: campaign effects integrated (or, when they cannot be, sampled)."""
     from liftpool.models.backend import configure_backend
     from liftpool.models.collapsed import POPULATION_VARS, build_collapsed_model, campaign_draws
@@ -575,7 +599,7 @@ def _sample_conditional(d: Design, curves, qcore: dict, s: ModelSettings, info: 
     info["backend"] = configure_backend()
     collapsed = uses_collapsed(d, s)
     if collapsed:
-        model = build_collapsed_model(d, curves, s)
+        model = build_collapsed_model(d, curves, s, tests)
         starts = _population_starts(qcore, model, s)
     else:
         spreads = {k: float(np.mean(qcore[k])) for k in ("bias_sd", "residual_sd", "lift_sd")}
@@ -607,7 +631,7 @@ def _sample_conditional(d: Design, curves, qcore: dict, s: ModelSettings, info: 
         t1 = time.perf_counter()
         ch, dr = post.sizes["chain"], post.sizes["draw"]
         flat = {k: post[k].values.reshape((ch * dr,) + post[k].shape[2:]) for k in POPULATION_VARS if k in post}
-        full = campaign_draws(d, curves, s, flat, rng)
+        full = campaign_draws(d, curves, s, flat, rng, tests)
         core = {k: v.reshape((ch, dr) + v.shape[1:]) for k, v in full.items()}
         info["completion_seconds"] = round(time.perf_counter() - t1, 2)
     else:
@@ -630,12 +654,12 @@ def _posterior_dataset(d: Design, core: dict, done: dict, chains: int, draws: in
         coords["group"] = d.groups
     data = {}
     dims_of = {"bias": ("campaign",), "target_excess": ("campaign",), "group_effect": ("group",),
-               "outcome_bias": ("outcome",)}
+               "outcome_bias": ("outcome",), "excess_bias": ("campaign",)}
     for k, v in core.items():
         if not isinstance(v, np.ndarray):
             continue
         data[k] = (("chain", "draw") + dims_of.get(k, ()), v.reshape((chains, draws) + v.shape[2:]))
-    for k in _CAMPAIGN_VARS:
+    for k in _CAMPAIGN_VARS + (("excess_bias",) if "excess_bias" in done else ()):
         data[k] = (("chain", "draw", "campaign"), done[k].reshape(chains, draws, -1))
     data["effect"] = (("chain", "draw", "pair"), done["effect"].reshape(chains, draws, -1).astype(np.float32))
     return xr.Dataset(data, coords=coords)
@@ -698,6 +722,7 @@ def fit_counts(
     groups: dict[str, str] | None = None,
     progress: Callable[[str], None] | None = None,
     progressbar: bool = False,
+    experiments: pd.DataFrame | None = None,
 ) -> FitResult:
     """Fit the hierarchical lift model (or the quick mode) to a counts table.
 
@@ -714,6 +739,10 @@ def fit_counts(
         Called with a short text before each step.
     progressbar : bool
         Show PyMC's sampling progress bar (on a terminal).
+    experiments : DataFrame, optional
+        Randomized tests converted to the lift among the exposed
+        (:func:`liftpool.data_prep.experiments.check_experiments`): each pins its campaign's lift,
+        and with them the target's excess bias over its placebos is learned (docs/model.md).
 
     Returns
     -------
@@ -724,12 +753,14 @@ def fit_counts(
     d = make_design(counts, groups=groups)
     rng = np.random.default_rng(s.seed + 1)
     corrected = not d.flags.no_placebo_anywhere
+    tests = _check_tests(d, s, experiments)
     info = {"created": _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"), "versions": package_versions(),
             "campaigns": d.n_campaigns, "rows": int(len(d.users)), "strata": int(len(d.stratum_pair)),
             "pairs": int(len(d.pair_campaign)), "likelihood": s.likelihood}
     t0 = time.perf_counter()
     predictive = None
     curves = None
+    heldout = None
     if quick and s.likelihood == "binomial":
         say("quick mode: stratified estimates and exact pooling")
         r = quick_fit(d, s)
@@ -763,7 +794,7 @@ def fit_counts(
         say("quick mode: the same structure on Gaussian approximations of the curves" if quick else
             "quick-mode pass: starting points and centring weights for the sampler")
         qcore = gaussian_posterior(curves.mode, se, curves.informative, d.pair_campaign, d.target_pair(), s,
-                                   n_quick, np.random.default_rng(s.seed))
+                                   n_quick, np.random.default_rng(s.seed), tests=tests)
         qcore["lift_mean_scale"] = s.lift_mean_scale
         if quick:
             core = {k: (v[None] if isinstance(v, np.ndarray) else v) for k, v in qcore.items()}
@@ -777,12 +808,12 @@ def fit_counts(
             idata = None
         else:
             s = s.for_portfolio(d.n_campaigns)  # the rate used is stored with the fit's settings
-            idata, diag, model, core = _sample_conditional(d, curves, qcore, s, info, say, progressbar, t0, rng)
+            idata, diag, model, core = _sample_conditional(d, curves, qcore, s, info, say, progressbar, t0, rng, tests)
     if core is not None:
         chains, draws = core["target_excess"].shape[:2]
         flat = {k: (v.reshape((chains * draws,) + v.shape[2:]) if isinstance(v, np.ndarray) else v)
                 for k, v in core.items()}
-        done = complete_draws(d, cells, curves, flat, rng)
+        done = complete_draws(d, cells, curves, flat, rng, tests)
         post = _posterior_dataset(d, core, done, chains, draws)
         if idata is None:
             idata = az.InferenceData(posterior=post)
@@ -797,6 +828,10 @@ def fit_counts(
                                             "inside_interval": float(predictive["inside"].mean()),
                                             "level": s.level}
         info["prior_predictive"] = prior_predictive_lift_numpy(d, s)
+        if corrected:
+            say("held-out checks: each placebo and each randomized test predicted without itself")
+            heldout = heldout_checks(d, curves, flat, s, tests, experiments, s.level)
+            info["heldout"] = heldout_info(heldout, s.level)
     _add_data(idata, d, curves)
     info["counts_sha256"] = counts_hash(d.counts)
     post = idata.posterior
@@ -816,5 +851,36 @@ def fit_counts(
                       + " (see fit.diagnostics for what to do)", LiftpoolWarning, stacklevel=2)
     idata.posterior.attrs.update({"liftpool_mode": "quick" if quick else "full", "seed": s.seed,
                                   "corrected": int(corrected)})
+    info["tests"] = tests.n_tested
+    info["excess_bias"] = bool(corrected and excess_active(s, tests))
     return FitResult(idata=idata, summary=summary, diagnostics=diag, flags=d.flags, settings=s,
-                     mode="quick" if quick else "full", info=info, predictive=predictive, estimands=est)
+                     mode="quick" if quick else "full", info=info, predictive=predictive, estimands=est,
+                     tests=experiments if tests.n_tested else None, heldout=heldout)
+
+
+def heldout_info(heldout: pd.DataFrame, level: float) -> dict:
+    """The held-out checks' coverage by kind (for fit.json and the report)."""
+    out = {"level": level}
+    for kind in ("test", "placebo"):
+        h = heldout[heldout["kind"] == kind]
+        out[kind] = {"n": int(len(h)), "covered": int(h["covered"].sum()),
+                     "unreliable": int((h["pareto_k"] > KHAT_LIMIT).sum())}
+    return out
+
+
+def _check_tests(d: Design, s: ModelSettings, experiments: pd.DataFrame | None):
+    """The randomized tests combined per campaign; what the model cannot use is refused (exit 2)."""
+    if experiments is None or len(experiments) == 0:
+        return campaign_tests(d.campaigns, None)
+    if s.likelihood != "conditional":
+        raise ConfigError(problem="randomized tests are used by the conditional likelihood (the default), not by "
+                                  f"likelihood '{s.likelihood}'",
+                          fix="leave --likelihood at its default, or leave the tests out")
+    if d.flags.no_placebo_anywhere:
+        raise InputError(problem="randomized tests calibrate the placebo correction, and no campaign has a "
+                                 "placebo outcome", fix="add placebo outcomes, or leave the tests out")
+    unknown = sorted(set(experiments["campaign"].astype(str)) - set(d.campaigns))
+    if unknown:
+        raise InputError(problem=f"tested campaign(s) not in the counts: {', '.join(map(repr, unknown[:5]))}",
+                         column="campaign", fix="test campaigns must be among the counts' campaigns")
+    return campaign_tests(d.campaigns, experiments)

@@ -9,13 +9,16 @@ from typing import Any
 from liftpool.data_prep.errors import ConfigError
 from liftpool.data_prep.options import OptionsMixin
 
-__all__ = ["ModelSettings", "SAMPLERS", "INITS", "PARAMETERIZATIONS", "BIAS_SIGNS", "LIKELIHOODS", "DEFAULT_ACCEPT", "default_cores"]
+__all__ = ["ModelSettings", "SAMPLERS", "INITS", "PARAMETERIZATIONS", "BIAS_SIGNS", "EXCESS_MODES", "LIKELIHOODS", "DEFAULT_ACCEPT", "default_cores"]
 
 SAMPLERS = ("pymc", "nutpie", "numpyro")
 INITS = ("auto", "advi+adapt_diag", "jitter+adapt_diag")
 PARAMETERIZATIONS = ("auto", "noncentered", "centered")
 LIKELIHOODS = ("conditional", "binomial")
 BIAS_SIGNS = ("any", "nonnegative")
+#: The target's excess bias over its placebos': learned when randomized tests are given (``auto``),
+#: always a model term (``on``: without tests its prior only widens the intervals), or fixed at 0.
+EXCESS_MODES = ("auto", "on", "off")
 #: NUTS target acceptance rate by likelihood when none is given (docs/performance.md).
 DEFAULT_ACCEPT = {"conditional": 0.95, "binomial": 0.99}
 #: ... and for the conditional model on a portfolio of at most this many campaigns, 0.99: there the
@@ -67,6 +70,13 @@ class ModelSettings(OptionsMixin):
         trade, common practice, no source).
     outcome_bias : bool
         Add a bias effect per outcome shared by every campaign using it.
+    excess_bias : {"auto", "on", "off"}
+        The target's own bias beyond its placebos' (``excess_mean``, ``excess_sd`` across campaigns;
+        docs/model.md).  ``auto``: learned when randomized tests are given, fixed at 0 otherwise
+        (without tests it cannot be told from the lift).  ``on``: a model term even without tests
+        (its prior then widens every interval).  ``off``: fixed at 0; tests only pin their lifts.
+    excess_mean_scale, excess_sd_scale : float
+        Normal prior scale of the excess bias's mean and half-normal scale of its spread.
     lift_mean_scale, lift_sd_scale : float
         Normal prior scale of the pooled lift and half-normal scale of its spread across campaigns.
     bias_mean_scale, bias_sd_scale, residual_sd_scale, outcome_bias_sd_scale : float
@@ -91,12 +101,15 @@ class ModelSettings(OptionsMixin):
     parameterization: str = "noncentered"
     bias_sign: str = "any"
     outcome_bias: bool = False
+    excess_bias: str = "auto"
     lift_mean_scale: float = 0.5
     lift_sd_scale: float = 0.25
     bias_mean_scale: float = 0.5
     bias_sd_scale: float = 0.25
     residual_sd_scale: float = 0.15
     outcome_bias_sd_scale: float = 0.15
+    excess_mean_scale: float = 0.25
+    excess_sd_scale: float = 0.1
     group_sd_scale: float = 0.25
     baseline_sd_scale: float = 1.0
     level: float = 0.9
@@ -130,6 +143,8 @@ class ModelSettings(OptionsMixin):
             raise ConfigError.invalid_choice("parameterization", self.parameterization, PARAMETERIZATIONS)
         if self.bias_sign not in BIAS_SIGNS:
             raise ConfigError.invalid_choice("bias_sign", self.bias_sign, BIAS_SIGNS)
+        if self.excess_bias not in EXCESS_MODES:
+            raise ConfigError.invalid_choice("excess_bias", self.excess_bias, EXCESS_MODES)
         for name in ("chains", "draws", "advi_iterations"):
             if int(getattr(self, name)) < 1:
                 raise ConfigError(problem=f"'{name}' must be at least 1", fix=f"set '{name}' to a positive number")
