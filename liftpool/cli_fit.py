@@ -13,6 +13,7 @@ def model_args(p: argparse.ArgumentParser) -> None:
     from liftpool.models.settings import (
         BIAS_SIGNS,
         DEFAULT_ACCEPT,
+        EXCESS_MODES,
         INITS,
         LIKELIHOODS,
         PARAMETERIZATIONS,
@@ -46,6 +47,12 @@ def model_args(p: argparse.ArgumentParser) -> None:
                    help=f"nonnegative: constrain each campaign's bias to >= 0 (default {d.bias_sign})")
     g.add_argument("--outcome-bias", action="store_true", help="add a bias effect per outcome shared by campaigns")
     g.add_argument("--groups", help="CSV with campaign,group (e.g. product line): a further pooling level")
+    g.add_argument("--experiments", metavar="F",
+                   help="randomized tests (campaign, estimate, std_error, measures, exposed_share): each pins its "
+                        "campaign's lift and calibrates the target's excess bias (docs/model.md); a workspace's "
+                        "own inputs.experiments by default")
+    g.add_argument("--excess-bias", choices=EXCESS_MODES,
+                   help=f"the target's bias beyond its placebos' (default {d.excess_bias}: learned when tests are given)")
     g.add_argument("--strict", action="store_true", help="exit with code 3 when the fit did not converge")
 
 
@@ -53,7 +60,7 @@ def overrides_from_args(args) -> dict:
     """Model settings given on the command line (only those given)."""
     vals = {name: getattr(args, name) for name in ("chains", "draws", "tune", "seed", "level", "sampler",
                                                   "target_accept", "init", "parameterization", "bias_sign",
-                                                  "likelihood")
+                                                  "likelihood", "excess_bias")
             if getattr(args, name, None) is not None}
     if getattr(args, "outcome_bias", False):
         vals["outcome_bias"] = True
@@ -113,8 +120,13 @@ def cmd_fit(args, console) -> int:
                          file=str(out), fix="choose a new --out folder")
     counts = read_counts(args.counts)
     settings = settings_from_args(args)
+    tests = None
+    if args.experiments:
+        from liftpool.data_prep.experiments import read_experiments
+
+        tests = read_experiments(args.experiments, campaigns=sorted(counts["campaign"].astype(str).unique()))
     fit = fit_counts(counts, settings, quick=args.quick, groups=read_groups(args.groups), progress=console.step,
-                     progressbar=console.tty and not console.quiet)
+                     progressbar=console.tty and not console.quiet, experiments=tests)
     fit.save(out)
     return _finish(fit, f"fit written to {out}", args, console)
 
@@ -138,5 +150,5 @@ def _fit_workspace(args, console) -> int:
     overrides = overrides_from_args(args)
     with ws.lock("fit"):
         fid, fit = ws.fit(quick=args.quick, progress=console.step, progressbar=console.tty and not console.quiet,
-                          groups=read_groups(args.groups), **overrides)
+                          groups=read_groups(args.groups), experiments=args.experiments, **overrides)
     return _finish(fit, f"fit {fid} written to {ws.path / 'fits' / fid}", args, console)

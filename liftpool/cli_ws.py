@@ -16,6 +16,8 @@ def register(sub, common, rules_args, rules_from_args) -> None:
     p.add_argument("--outcomes", required=True, action="append", help="outcomes file (repeatable)")
     p.add_argument("--users")
     p.add_argument("--spend")
+    p.add_argument("--experiments", help="randomized tests: campaign, estimate, std_error, measures, exposed_share "
+                                         "(docs/data-format.md); every fit of the workspace uses them")
     rules_args(p)
     p.add_argument("--currency", help="ISO currency code for the report (default USD)")
     p.add_argument("--engine", choices=["duckdb", "spark"],
@@ -56,7 +58,7 @@ def cmd_init(args, console) -> int:
 
     counting = args._rules(args)
     ws = Workspace.init(args.workspace, args.impressions, args.conversions, args.outcomes, users=args.users,
-                        spend=args.spend, counting=counting,
+                        spend=args.spend, experiments=args.experiments, counting=counting,
                         report={"currency": args.currency} if args.currency else None,
                         prepare={k: v for k, v in (("engine", args.engine), ("spark_master", args.spark_master))
                                  if v} or None)

@@ -26,7 +26,8 @@ def run_demo(folder: Path, seed: int = 20261201, console: Console | None = None)
     console.step(f"simulating the invented scenario 'Fernhollow Home & Garden' into {data}")
     paths = write_scenario(data, seed=seed)
     ws = Workspace.init(folder, paths["impressions"], [paths["conversions"]], [paths["outcomes"]],
-                        users=paths["users"], spend=paths["spend"], counting={"unexposed": True},
+                        users=paths["users"], spend=paths["spend"], experiments=paths.get("experiments"),
+                        counting={"unexposed": True},
                         model={"seed": seed})
     with ws.lock("demo"):
         summary = ws.prepare(progress=console.step)

@@ -49,7 +49,9 @@ SECTIONS = ("inputs", "prepare", "counting", "model", "report")
 PREPARE_KEYS = ("engine", "spark_master")
 #: The engines a workspace prepares with: the out-of-core ones (pandas reads whole logs into memory).
 PREPARE_ENGINES = tuple(e for e in ENGINES if e != "pandas")
-INPUT_KEYS = ("impressions", "conversions", "outcomes", "users", "spend")
+INPUT_KEYS = ("impressions", "conversions", "outcomes", "users", "spend", "experiments")
+#: The inputs the counting reads (their hashes say whether a preparation is of the current inputs).
+PREP_INPUT_KEYS = ("impressions", "conversions", "outcomes", "users", "spend")
 REPORT_KEYS = ("currency", "level", "title")
 
 
@@ -143,7 +145,7 @@ class Workspace:
 
     # ---- creation and loading -------------------------------------------------------------
     @classmethod
-    def init(cls, path, impressions, conversions, outcomes, users=None, spend=None, covariates=None,
+    def init(cls, path, impressions, conversions, outcomes, users=None, spend=None, experiments=None, covariates=None,
              window_days=None, counting: dict | None = None, model: dict | None = None,
              report: dict | None = None, prepare: dict | None = None) -> Workspace:
         """Create a workspace that points at the input files (checked for existence, not yet validated)."""
@@ -152,7 +154,7 @@ class Workspace:
             raise InputError(problem="a workspace already exists here", file=str(path / CONFIG_NAME),
                              fix="use it as it is, or choose a new folder")
         inputs = {"impressions": impressions, "conversions": conversions, "outcomes": outcomes, "users": users,
-                  "spend": spend}
+                  "spend": spend, "experiments": experiments}
         cfg_inputs = {}
         for k, v in inputs.items():
             if v is None:
@@ -289,7 +291,22 @@ class Workspace:
         (progress or (lambda _m: None))("checking inputs")
         opened = open_inputs(inp["impressions"], inp["conversions"], inp["outcomes"], users=inp["users"],
                              spend=inp["spend"], covariates=covs, large_ad_pixels=self.rules.large_ad_pixels)
-        return {k: t.n_rows for k, t in opened.tables.items()}, opened.warnings
+        rows = {k: t.n_rows for k, t in opened.tables.items()}
+        if self.config["inputs"].get("experiments"):
+            rows["experiments"] = len(self.experiments())
+        return rows, opened.warnings
+
+    def experiments(self, path: str | None = None) -> pd.DataFrame | None:
+        """The randomized tests (``path``, or the workspace's ``inputs.experiments``), converted; None without."""
+        from liftpool.data_prep.experiments import read_experiments
+
+        path = path or self.config["inputs"].get("experiments")
+        if not path:
+            return None
+        gen = self.current()
+        camps = sorted(pd.read_parquet(gen / "counts.parquet", columns=["campaign"])["campaign"].astype(str).unique()) \
+            if gen is not None else None
+        return read_experiments(path, campaigns=camps)
 
     def current(self) -> Path | None:
         cur = self.path / "prepared" / "CURRENT"
@@ -370,7 +387,7 @@ class Workspace:
 
     def _hashes(self, config: dict | None = None) -> dict:
         i = (config or self.config)["inputs"]
-        return input_sha256({k: _as_list(i[k]) for k in INPUT_KEYS if k in i})
+        return input_sha256({k: _as_list(i[k]) for k in PREP_INPUT_KEYS if k in i})
 
     def _stage_new_outcomes(self, outcomes_file, conversions) -> tuple[dict, pd.DataFrame, dict, list[str]]:
         """Check the new outcomes, keep a copy in ``inputs/`` and return (inputs, new rows, new config,
@@ -437,11 +454,17 @@ class Workspace:
         return holder["summary"], holder["rows"]
 
     def fit(self, quick: bool = False, progress: Callable[[str], None] | None = None, progressbar: bool = False,
-            groups: dict | None = None, **overrides) -> tuple[str, FitResult]:
-        """Fit the current counts into a new ``fits/<id>/``; returns the id and the fit."""
+            groups: dict | None = None, experiments: str | None = None, **overrides) -> tuple[str, FitResult]:
+        """Fit the current counts into a new ``fits/<id>/``; returns the id and the fit.
+
+        ``experiments`` is a randomized tests file for this fit; by default the workspace's
+        ``inputs.experiments`` (if set).
+        """
         counts = self.counts()
         settings = self.settings(**overrides)
-        fit = fit_counts(counts, settings, quick=quick, groups=groups, progress=progress, progressbar=progressbar)
+        tests = self.experiments(experiments)
+        fit = fit_counts(counts, settings, quick=quick, groups=groups, progress=progress, progressbar=progressbar,
+                         experiments=tests)
         fits = self.path / "fits"
         fits.mkdir(exist_ok=True)
         n = 1 + max([int(p.name.split("-")[0]) for p in fits.iterdir() if p.name[:3].isdigit()], default=0)

@@ -33,10 +33,23 @@ import pandas as pd
 import xarray as xr
 from scipy.special import expit, logit
 
-__all__ = ["tipping_points", "shifted_lift", "sensitivity_curve", "e_value", "TIP_COLUMNS", "TIP_RANGE"]
+__all__ = ["tipping_points", "shifted_lift", "sensitivity_curve", "e_value", "TIP_COLUMNS", "TIP_MEANINGS",
+           "TIP_RANGE"]
 
 #: The search range of the portfolio's tipping points (log odds); beyond it a point is reported as +-inf.
 TIP_RANGE = 5.0
+#: Each tipping-point column's meaning (the report's definitions sheet and glossary read it here).
+TIP_MEANINGS = {
+    "tip_interval": "extra target-only bias (log odds) at which the lower end of the lift's interval reaches 0; "
+                    "negative: the interval already includes 0",
+    "tip_positive": "extra target-only bias (log odds) at which the chance of a positive lift falls below one half",
+    "tip_paid": "extra target-only bias (log odds) at which the chance of paying for itself falls below one half",
+    "tip_interval_spreads": "tip_interval in units of the learned outcome-to-outcome spread of the bias (residual_sd)",
+    "tip_positive_spreads": "tip_positive in units of the learned outcome-to-outcome spread of the bias",
+    "tip_paid_spreads": "tip_paid in units of the learned outcome-to-outcome spread of the bias",
+    "e_value": "E-value of the median lift read as a risk ratio (VanderWeele & Ding 2017)",
+    "e_value_interval": "E-value of the lift's lower interval end read as a risk ratio (1 when it includes no effect)",
+}
 TIP_COLUMNS = ["campaign", "kind", "tip_interval", "tip_positive", "tip_paid", "tip_interval_spreads",
                "tip_positive_spreads", "tip_paid_spreads", "e_value", "e_value_interval"]
 

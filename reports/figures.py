@@ -12,6 +12,7 @@ import matplotlib as mpl
 import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
+from matplotlib.ticker import FuncFormatter
 
 from liftpool.reports.money import fmt_prob
 from liftpool.reports.tables import KIND_OF_ROW, ReportTables
@@ -288,11 +289,108 @@ def _roas_figure(t: ReportTables) -> bytes | None:
     return png_bytes(fig)
 
 
+def _heldout_placebo_figure(t: ReportTables) -> bytes | None:
+    h = t.heldout_placebos
+    if h is None or h.empty:
+        return None
+    L = int(round(t.level * 100))
+    n_all = len(h)
+    lo_c, hi_c = f"predicted, {L}% lower", f"predicted, {L}% upper"
+    if lo_c not in h.columns:  # the check's own level differs from the report's
+        lo_c, hi_c = [c for c in h.columns if c.startswith("predicted, ")][:2]
+    if n_all > MAX_ROWS:  # those furthest outside (or nearest the edge of) their intervals
+        mid, half = (h[lo_c] + h[hi_c]) / 2, (h[hi_c] - h[lo_c]) / 2
+        h = h.loc[((h["estimate (log odds)"] - mid).abs() / half).sort_values(ascending=False).index[:MAX_ROWS]]
+        h = h.sort_index()
+    fig, ax = new_figure((7.2, 0.36 * len(h) + 1.3))
+    y = np.arange(len(h))[::-1]
+    ax.hlines(y, h[lo_c], h[hi_c], color="0.45", linewidth=2.2, label="predicted from the rest (interval)")
+    inside = h["inside"].to_numpy(bool)
+    ax.plot(h["estimate (log odds)"][inside], y[inside], "o", color="black", markersize=5, label="estimate, inside")
+    if (~inside).any():
+        ax.plot(h["estimate (log odds)"][~inside], y[~inside], "x", color="black", markersize=7, mew=1.6,
+                label="estimate, outside")
+    ax.set_yticks(y, [_plain(f"{c} | {o}") for c, o in zip(h["campaign"], h["placebo outcome"], strict=True)])
+    ax.set_xlabel("seen-vs-unseen effect on the placebo outcome, log odds")
+    n_in = int(t.heldout_placebos["inside"].sum())
+    more = f"; {len(h)} furthest out shown" if len(h) < n_all else ""
+    ax.set_title(f"Each placebo predicted without itself: {n_in} of {n_all} inside{more}")
+    ax.legend(loc="best", fontsize=8)
+    return png_bytes(fig)
+
+
+def _tests_figure(t: ReportTables) -> bytes | None:
+    d = t.tests
+    if d is None or d.empty:
+        return None
+    cols = list(d.columns)
+    tl, tu = cols[3], cols[4]
+    wl, wu = cols[6], cols[7]
+    fig, ax = new_figure((7.2, 0.62 * len(d) + 1.4))
+    y = np.arange(len(d))[::-1]
+    for off, (lo, hi, med), m, color, label in (
+            (0.2, (tl, tu, "test lift among exposed"), "D", "black", "randomized test"),
+            (0.0, (wl, wu, "model without the test, median"), "s", "0.45", "model without this test"),
+            (-0.2, (None, None, "model with all tests, median"), "o", "black", "model with all tests")):
+        if lo is not None:
+            ax.hlines(y + off, d[lo], d[hi], color=color, linewidth=1.8)
+        ax.plot(d[med], y + off, m, color=color, markersize=5, markerfacecolor="white" if m == "o" else color,
+                label=label)
+    ax.axvline(0, color="black", linewidth=0.8)
+    ax.set_yticks(y, [_plain(f"{c} ({n})") if str(n) != str(c) else _plain(c)
+                      for c, n in zip(d["campaign"], d["test"], strict=True)])
+    ticks = _spaced_ticks(ax, (-0.5, -0.25, -0.1, 0, 0.1, 0.25, 0.5, 1.0))
+    ax.set_xticks(ticks, [f"{v:+.0%}" for v in ticks])
+    ax.set_xlabel(f"lift among exposed users (median and {t.level:.0%} interval)")
+    ax.set_title(f"Randomized tests against the model: {int(d['inside'].sum())} of {len(d)} predicted")
+    ax.legend(loc="best", fontsize=8)
+    return png_bytes(fig)
+
+
+def _sensitivity_figure(t: ReportTables) -> bytes | None:
+    from liftpool.models.sensitivity import sensitivity_curve
+
+    if t.tipping is None or "users_seen" not in t.estimands:
+        return None
+    rows = [r for r in t.results.to_dict(orient="records") if r["row"] == "portfolio"]
+    camps = _biggest([r for r in t.results.to_dict(orient="records") if r["row"] == "campaign"], "users_seen", 3)
+    units = rows + camps
+    if not units:
+        return None
+    tips = [r.get("tip_interval", np.nan) for r in units]
+    top = max([0.3] + [1.4 * x for x in tips if np.isfinite(x) and x > 0])
+    deltas = np.linspace(0.0, min(top, 2.0), 31)
+    fig, axes = new_figure((7.2, 2.3 * ((len(units) + 1) // 2) + 0.4), nrows=(len(units) + 1) // 2, ncols=2,
+                           squeeze=False, sharex=True)
+    for ax, r in zip(axes.ravel(), units, strict=False):
+        c = sensitivity_curve(t.estimands, r["campaign"], t.level, deltas)
+        ax.fill_between(c["delta"], c["lower"], c["upper"], color="0.85", label=f"{t.level:.0%} interval")
+        ax.plot(c["delta"], c["median"], "-", color="black", linewidth=1.4, label="median")
+        ax.axhline(0, color="black", linewidth=0.8)
+        tip = r.get("tip_interval", np.nan)
+        if np.isfinite(tip) and 0 < tip <= deltas[-1]:
+            ax.axvline(tip, color="black", linestyle=":", linewidth=1.2)
+            ax.annotate(f"{tip:.2f}", (tip, ax.get_ylim()[1]), fontsize=7, ha="left", va="top",
+                        xytext=(2, -2), textcoords="offset points")
+        ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _p: f"{v:+.0%}"))
+        ax.set_title(_row_label(r), fontsize=9)
+    for ax in axes.ravel()[len(units):]:
+        ax.set_visible(False)
+    for ax in axes[-1]:
+        ax.set_xlabel("extra target-only bias (log odds)")
+    axes.ravel()[0].legend(loc="upper right", fontsize=7)
+    fig.suptitle("Lift as the target's own bias exceeds its placebos' (dotted: the lower end reaches 0)", fontsize=9)
+    return png_bytes(fig)
+
+
 def make_figures(t: ReportTables) -> dict[str, bytes]:
     """All figures as PNG bytes, by file name."""
     with mpl.rc_context(STYLE):
         figs = {"lift_by_campaign.png": _lift_figure(t),
                 "placebo_check.png": _placebo_figure(t),
+                "placebo_heldout.png": _heldout_placebo_figure(t),
+                "randomized_tests.png": _tests_figure(t),
+                "sensitivity.png": _sensitivity_figure(t),
                 "shrinkage.png": _shrinkage_figure(t),
                 "naive_to_corrected.png": _steps_figure(t),
                 "return_on_ad_spend.png": _roas_figure(t)}

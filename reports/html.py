@@ -15,6 +15,7 @@ import pandas as pd
 from liftpool.reports.glossary import GLOSSARY
 from liftpool.reports.money import fmt_int, fmt_money, fmt_pct, fmt_plain, fmt_prob, fmt_ratio
 from liftpool.reports.tables import KIND_OF_ROW, ReportTables
+from liftpool.reports.text import calibration_paragraph, placebo_heldout_sentence
 
 __all__ = ["render_html", "CAUTIONS"]
 
@@ -175,6 +176,45 @@ def _money_table(t: ReportTables) -> str:
     return f"<table><thead><tr>{th}</tr></thead><tbody>{''.join(rows)}</tbody></table>{note}"
 
 
+def _fmt_lo(x) -> str:
+    if not np.isfinite(x):
+        return "beyond ±5" if np.isinf(x) else "n/a"
+    return f"{x:+.2f}"
+
+
+def _tipping_table(t: ReportTables) -> str:
+    """How much extra target-only bias each conclusion survives (log odds; spreads; E-value)."""
+    if t.tipping is None or "tip_interval" not in t.results.columns:
+        return ""
+    L = int(round(t.level * 100))
+    paid = "tip_paid" in t.results.columns
+    head = ["campaign", f"{L}% lower end reaches 0 at", "in spreads between outcomes", "P(lift > 0) below 50% at"]
+    head += ["P(paid for itself) below 50% at"] if paid else []
+    head += [f"E-value of the {L}% lower end"]
+    rows = []
+    for r in t.results.to_dict(orient="records"):
+        if r["row"] not in ("campaign", "portfolio") or not np.isfinite(r.get("tip_positive", np.nan)) and not np.isinf(
+                r.get("tip_positive", np.nan)):
+            continue
+        sp = r.get("tip_interval_spreads", np.nan)
+        cells = [f'<td class="l">{_name(r)}</td>', f"<td><b>{esc(_fmt_lo(r['tip_interval']))}</b></td>",
+                 f"<td>{esc(f'{sp:+.1f}') if np.isfinite(sp) else 'n/a'}</td>",
+                 f"<td>{esc(_fmt_lo(r['tip_positive']))}</td>"]
+        if paid:
+            cells.append(f"<td>{esc(_fmt_lo(r.get('tip_paid', np.nan)))}</td>")
+        ev = r.get("e_value_interval", np.nan)
+        cells.append(f"<td>{esc(f'{ev:.2f}') if np.isfinite(ev) else 'n/a'}</td>")
+        rows.append("<tr>" + "".join(cells) + "</tr>")
+    th = "".join(f'<th class="l">{esc(h)}</th>' if i == 0 else f"<th>{esc(h)}</th>" for i, h in enumerate(head))
+    return (f"<p>The correction assumes each target's bias equals its placebos' (up to the learned spread between "
+            f"outcomes{', and the excess the randomized tests show' if t.excess else ''}). Each column is the extra "
+            "bias on the target alone, on the log-odds scale, at which a conclusion flips (tipping-point analysis); "
+            "a negative value means it does not hold even without extra bias. The E-value is the related measure "
+            "on the risk-ratio scale (VanderWeele &amp; Ding 2017): how strongly a hidden confounder would have to be "
+            "tied to both seeing the ads and converting to explain the lower end away.</p>"
+            f"<table><thead><tr>{th}</tr></thead><tbody>{''.join(rows)}</tbody></table>")
+
+
 def _df_table(df: pd.DataFrame, fmt: dict | None = None) -> str:
     fmt = fmt or {}
     th = "".join(f'<th class="l">{esc(c)}</th>' for c in df.columns)
@@ -221,6 +261,9 @@ def render_html(t: ReportTables, figures: dict[str, bytes], paragraphs: list[tup
     parts.append(f"<p><b>Portfolio.</b> {esc(portfolio)}</p>")
     for c, s in paragraphs:
         parts.append(f'<p class="camp"><b>{esc(c)}</b> {esc(s)}</p>')
+    cal = calibration_paragraph(t)
+    if cal:
+        parts.append(f"<p><b>Calibration.</b> {esc(cal)}</p>")
     parts.append(f'<p class="muted">Intervals are {L}% credible intervals: given the model and its assumptions, the '
                  f"value lies in the interval with {L}% probability. Lift is relative to what the seen users would "
                  "have done without the ads.</p>")
@@ -228,12 +271,29 @@ def render_html(t: ReportTables, figures: dict[str, bytes], paragraphs: list[tup
     parts.append(_lift_table(t))
     parts.append("<h3>Cost and return</h3>")
     parts.append(_money_table(t))
+    tip = _tipping_table(t)
+    if tip:
+        parts.append("<h3>How much hidden bias each conclusion survives</h3>")
+        parts.append(tip)
+    if t.tests is not None:
+        parts.append("<h3>Randomized tests beside the model</h3><p>Each test's lift among the exposed (converted "
+                     "from the whole test group by the exposed share), the model's estimate of that campaign "
+                     "without the test, and its prediction of the test's result (the model's uncertainty plus the "
+                     "test's own).</p>")
+        parts.append(_df_table(t.tests))
     parts.append("<h2>Figures</h2>")
     captions = {
         "lift_by_campaign.png": "Naive (served vs not served), uncorrected (seen vs unseen within cells) and "
                                 "bias-corrected lift per campaign, with the pooled portfolio estimate.",
         "placebo_check.png": "Each placebo outcome's seen-vs-unseen effect before and after the bias correction. "
-                             "Before: the bias the placebos reveal. After: close to zero when the correction works.",
+                             "Before: the bias the placebos reveal. After: the same placebo corrected by a bias fitted "
+                             "to it too, so near zero by construction; the held-out figure below is the honest check.",
+        "placebo_heldout.png": "Each placebo's estimate against its prediction from all the other data (the placebo "
+                               "itself left out). About the interval level should fall inside.",
+        "randomized_tests.png": "Each randomized test's lift among the exposed, the model's estimate of that "
+                                "campaign without the test, and with all tests.",
+        "sensitivity.png": "The lift's interval as a target-only bias beyond the placebos' grows (log-odds scale); "
+                           "where the lower end crosses zero is the tipping point.",
         "shrinkage.png": "Each campaign alone against the pooled estimate; small campaigns move towards the portfolio.",
         "naive_to_corrected.png": "How each campaign's lift falls from the naive comparison to the bias-corrected one.",
         "return_on_ad_spend.png": "Posterior of return on ad spend (incremental revenue divided by spend).",
@@ -259,6 +319,9 @@ def render_html(t: ReportTables, figures: dict[str, bytes], paragraphs: list[tup
     parts.append("<h3>Placebo check</h3>")
     if not t.placebos.empty:
         parts.append(_df_table(t.placebos.drop(columns=["pair"])))
+    if t.heldout_placebos is not None:
+        parts.append(f"<h3>Each placebo predicted without itself</h3><p>{esc(placebo_heldout_sentence(t))}</p>")
+        parts.append(_df_table(t.heldout_placebos))
     if t.predictive is not None:
         L = int(round((t.predictive_level or t.level) * 100))  # the check's own level, set when it was fitted
         inside = float(t.predictive["inside"].mean())

@@ -15,6 +15,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 import xarray as xr
+from scipy import stats
 
 from liftpool.data_prep.errors import InputError
 from liftpool.models.estimands import (
@@ -27,6 +28,8 @@ from liftpool.models.estimands import (
     summarize,
 )
 from liftpool.models.fit import FitResult
+from liftpool.models.heldout import KHAT_LIMIT
+from liftpool.models.sensitivity import tipping_points
 from liftpool.models.summary import NEW_CAMPAIGN, PORTFOLIO
 
 __all__ = ["ReportTables", "build_tables", "interval", "COLUMNS", "label", "KIND_OF_ROW"]
@@ -64,6 +67,11 @@ COLUMNS = {
     "return_on_ad_spend_lower": ("return on ad spend, {L}% lower", "ratio"),
     "return_on_ad_spend_upper": ("return on ad spend, {L}% upper", "ratio"),
     "p_paid_for_itself": ("P(paid for itself)", "prob"),
+    "tip_interval": ("extra target bias that brings the {L}% lower end to 0 (log odds)", "logodds"),
+    "tip_interval_spreads": ("... in outcome-to-outcome spreads", "spreads"),
+    "tip_positive": ("extra target bias at which P(lift > 0) falls below 50% (log odds)", "logodds"),
+    "tip_paid": ("extra target bias at which P(paid for itself) falls below 50% (log odds)", "logodds"),
+    "e_value_interval": ("E-value of the {L}% lower end", "evalue"),
     "notes": ("notes", "text"),
 }
 #: The printed name of each kind of row.
@@ -105,6 +113,15 @@ class ReportTables:
     predictive_level: float | None = None
     spend_given: bool = False
     lift_spread: dict = field(default_factory=dict)
+    #: per unit: tipping points (:func:`liftpool.models.sensitivity.tipping_points`)
+    tipping: pd.DataFrame | None = None
+    #: the randomized tests beside the model's estimate without each (None without tests)
+    tests: pd.DataFrame | None = None
+    #: each placebo's estimate beside its prediction from the other data (leave-one-placebo-out)
+    heldout_placebos: pd.DataFrame | None = None
+    #: the excess bias's mean and spread (median, lower, upper) when learned; the residual_sd median
+    excess: dict = field(default_factory=dict)
+    residual_sd: float | None = None
 
     @property
     def campaigns(self) -> pd.DataFrame:
@@ -128,11 +145,17 @@ class ReportTables:
             out["data_preparation"] = self.prep
         if self.predictive is not None:
             out["predictive_check"] = self.predictive
+        if self.tests is not None:
+            out["randomized_tests"] = self.tests
+        if self.heldout_placebos is not None:
+            out["placebo_heldout"] = self.heldout_placebos
+        if self.tipping is not None:
+            out["tipping_points"] = self.tipping
         return out
 
 
 def _results(summary: pd.DataFrame, summary50: pd.DataFrame, fit: FitResult, nonviewable: dict,
-             spend_given: bool) -> pd.DataFrame:
+             spend_given: bool, tipping: pd.DataFrame | None = None) -> pd.DataFrame:
     """One row per unit from the tidy summaries (at the level, and at 50% for the lift's inner band)."""
     est = fit.estimands
     users = {k: dict(zip(est.unit.values.astype(str), est[k].values, strict=True)) if k in est else {}
@@ -162,6 +185,10 @@ def _results(summary: pd.DataFrame, summary50: pd.DataFrame, fit: FitResult, non
                 r["lift_lower50"], r["lift_upper50"] = get(q, "lower", s50), get(q, "upper", s50)
         for p in PROBABILITIES:
             r[p] = get(p, "mean")
+        if tipping is not None and u in tipping.index:
+            tp_ = tipping.loc[u]
+            for k in ("tip_interval", "tip_interval_spreads", "tip_positive", "tip_paid", "e_value_interval"):
+                r[k] = float(tp_[k])
         notes = []
         if np.isinf(r.get("cost_per_incremental_conversion_upper", np.nan)):
             notes.append("cost per incremental conversion not bounded above: incremental conversions may be zero or "
@@ -209,9 +236,17 @@ def build_tables(fit: FitResult, spend: pd.DataFrame | None = None, prep_campaig
     summary = summarize(est, level)
     summary50 = summarize(est[[v for v in ("lift",) if v in est]], 0.5) if "lift" in est else summary.iloc[:0]
     nv = {} if prep_campaigns is None else prep_campaigns.set_index("campaign")["nonviewable_share"].to_dict()
-    results = _results(summary, summary50, fit, nv, spend is not None)
-    spread = {}
     post = fit.idata.posterior
+    residual_sd = float(np.median(post["residual_sd"].values)) if "residual_sd" in post else None
+    tipping = None
+    if fit.corrected and "users_seen" in est and "counterfactual_conversions" in est:
+        tipping = tipping_points(est, level, residual_sd)
+        if "incremental_revenue" not in est:
+            tipping = tipping.drop(columns=["tip_paid", "tip_paid_spreads"])
+    results = _results(summary, summary50, fit, nv, spend is not None,
+                       None if tipping is None else tipping.set_index("campaign").reindex(
+                           columns=["tip_interval", "tip_interval_spreads", "tip_positive", "tip_paid", "e_value_interval"]))
+    spread = {}
     if "lift_sd" in post and fit.corrected:
         lo, hi = interval(post["lift_sd"].values, level)
         spread = {"median": float(np.median(post["lift_sd"].values)), "lower": lo, "upper": hi}
@@ -238,9 +273,57 @@ def build_tables(fit: FitResult, spend: pd.DataFrame | None = None, prep_campaig
                             "cells", "target", "placebos") if c in prep_campaigns.columns]
         prep = prep_campaigns[keep].rename(columns=lambda x: x.replace("_", " "))
     pp = fit.info.get("posterior_predictive") or {}
+    excess = {}
+    for k in ("excess_mean", "excess_sd"):
+        if k in post:
+            lo, hi = interval(post[k].values, level)
+            excess[k] = {"median": float(np.median(post[k].values)), "lower": lo, "upper": hi}
+    tests_t, placebos_t = _heldout_tables(fit, summary)
     return ReportTables(results=results, summary=summary, estimands=est, placebos=placebos, shrinkage=shrink,
                         diagnostics=diag, prep=prep, settings=settings,
                         provenance=pd.DataFrame(prov, columns=["item", "value"]),
                         predictive=fit.predictive, currency=currency.upper(), level=level,
                         predictive_level=pp.get("level", fit.level), spend_given=spend is not None,
-                        lift_spread=spread)
+                        lift_spread=spread, tipping=tipping, tests=tests_t, heldout_placebos=placebos_t, excess=excess,
+                        residual_sd=residual_sd)
+
+
+def _heldout_tables(fit: FitResult, summary: pd.DataFrame) -> tuple[pd.DataFrame | None, pd.DataFrame | None]:
+    """The tests beside the model without each (and with all), and the placebos' held-out predictions.
+
+    The held-out intervals are at the fit's level (the level they were computed at).
+    """
+    h = fit.heldout
+    if h is None or h.empty:
+        return None, None
+    L = int(round(float(fit.info.get("heldout", {}).get("level", fit.level)) * 100))
+    tests = None
+    ht = h[h["kind"] == "test"]
+    if len(ht):
+        lift = summary[summary["quantity"] == "lift"].set_index("campaign")
+        z = float(stats.norm.ppf(0.5 + fit.level / 2))
+        tests = pd.DataFrame({
+            "test": ht["item"].to_numpy(), "campaign": ht["campaign"].to_numpy(),
+            "test lift among exposed": ht["observed"].to_numpy(),
+            f"test, {L}% lower": (ht["observed"] - z * ht["std_error"]).to_numpy(),
+            f"test, {L}% upper": (ht["observed"] + z * ht["std_error"]).to_numpy(),
+            "model without the test, median": ht["model_median"].to_numpy(),
+            f"without, {L}% lower": ht["model_lower"].to_numpy(), f"without, {L}% upper": ht["model_upper"].to_numpy(),
+            "model with all tests, median": [float(lift.loc[c, "median"]) if c in lift.index else np.nan
+                                             for c in ht["campaign"]],
+            f"predicted test result, {L}% lower": ht["lower"].to_numpy(),
+            f"predicted test result, {L}% upper": ht["upper"].to_numpy(),
+            "inside": ht["covered"].astype(bool).to_numpy(),
+            "check reliable": (ht["pareto_k"] <= KHAT_LIMIT).to_numpy(),
+        })
+    hp = h[h["kind"] == "placebo"]
+    placebos = None
+    if len(hp):
+        placebos = pd.DataFrame({
+            "campaign": hp["campaign"].to_numpy(), "placebo outcome": hp["item"].to_numpy(),
+            "estimate (log odds)": hp["observed"].to_numpy(),
+            "predicted from the rest, median": hp["median"].to_numpy(),
+            f"predicted, {L}% lower": hp["lower"].to_numpy(), f"predicted, {L}% upper": hp["upper"].to_numpy(),
+            "inside": hp["covered"].astype(bool).to_numpy(),
+            "check reliable": (hp["pareto_k"] <= KHAT_LIMIT).to_numpy()})
+    return tests, placebos

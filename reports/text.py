@@ -10,7 +10,7 @@ from liftpool.reports.money import fmt_count, fmt_money, fmt_pct, fmt_prob, fmt_
 from liftpool.reports.tables import ReportTables
 
 __all__ = ["campaign_paragraphs", "portfolio_paragraph", "cost_sentence", "SPREAD_FLOOR", "SMALL_SAMPLE_CONVERSIONS",
-           "could_be_zero", "small_sample"]
+           "could_be_zero", "small_sample", "tipping_sentence", "calibration_paragraph", "placebo_heldout_sentence"]
 
 #: A spread of campaign lifts (sd, log odds) below this is "about the same" for the reader: 0.02
 #: log odds is a 2% relative difference in the odds (common practice, no source).
@@ -98,6 +98,7 @@ def campaign_paragraphs(t: ReportTables, flags: dict) -> list[tuple[str, str]]:
                   "estimate leans on the other campaigns (partial pooling).")
         if c in no_placebo:
             s += " It has no placebo outcome of its own, so its bias is borrowed from the other campaigns."
+        s += tipping_sentence(r, t)
         if t.spend_given and not _finite(r.get("spend")):
             s += " It is not in the spend file, so its cost is not shown and the totals leave it out."
         out.append((c, s))
@@ -128,6 +129,7 @@ def portfolio_paragraph(t: ReportTables) -> str:
         s += _return_sentence(p, "the portfolio")
     elif t.spend_given:
         s += " A spend file was given, but none of its campaigns has a bias-corrected estimate to cost."
+    s += tipping_sentence(p, t, whose="every target's")
     new = t.pooled("new campaign")
     if new is not None and _finite(new.get("lift")):
         s += (f" A new campaign like these would most likely lift conversions by about {fmt_pct(new['lift'])} "
@@ -141,4 +143,79 @@ def portfolio_paragraph(t: ReportTables) -> str:
             else:
                 s += (" The data cannot tell whether the campaigns' true lifts differ: their spread could be close "
                       f"to zero ({sp['lower']:.2f} to {sp['upper']:.2f} on the log-odds scale).")
+    return s
+
+
+def _bias_amount(x: float, spread: float | None) -> str:
+    """A tipping point in words: log odds, and in outcome-to-outcome spreads when known."""
+    txt = f"{x:.2f} on the log-odds scale (odds {math.exp(x):.2f} times as high)"
+    if spread and spread > 0:
+        txt += f", {x / spread:.1f} times the spread of the bias between outcomes"
+    return txt
+
+
+def tipping_sentence(r: dict, t: ReportTables, whose: str = "its target's") -> str:
+    """One plain sentence: how much extra target-only bias the campaign's (or portfolio's) conclusion survives."""
+    tip = r.get("tip_interval", np.nan)
+    if not _finite(tip):
+        return ""
+    sp = t.residual_sd
+    if tip > 0:
+        s = (f" The conclusion that it added conversions holds unless {whose} own bias exceeds the placebos' "
+             f"by more than {_bias_amount(tip, sp)}.")
+    else:
+        pos = r.get("tip_positive", np.nan)
+        s = (f" A positive lift is more likely than not unless {whose} own bias exceeds the placebos' by more "
+             f"than {_bias_amount(pos, sp)}." if _finite(pos) and pos > 0 else "")
+    paid = r.get("tip_paid", np.nan)
+    if _finite(paid) and paid > 0:
+        s += f" It more likely than not paid for itself unless that excess is above {paid:.2f}."
+    return s
+
+
+def calibration_paragraph(t: ReportTables) -> str:
+    """What the randomized tests say about the correction, or that there were none."""
+    L = int(round(t.level * 100))
+    if t.tests is None or t.tests.empty:
+        if not t.corrected:
+            return ""
+        return ("No randomized test was given, so the correction rests on the placebos alone: it assumes the "
+                "target's bias is its placebos' (up to how much the bias differs between outcomes). The last "
+                "sentence of each campaign above says how large a target-only bias would overturn its conclusion.")
+    n = len(t.tests)
+    inside = int(t.tests["inside"].sum())
+    s = (f"{n} randomized test{'s' if n != 1 else ''} ({', '.join(t.tests['test'].astype(str))}) calibrate the "
+         "correction. Each test pins its campaign's lift, so the seen-versus-unseen gap there measures the "
+         "target's own bias directly.")
+    e = t.excess.get("excess_mean")
+    if e:
+        s += (f" The tests put the target's bias beyond its placebos' at {e['median']:+.2f} on the log-odds scale "
+              f"({L}% interval {e['lower']:+.2f} to {e['upper']:+.2f}); every campaign's estimate is corrected by it "
+              "and its interval widened by how much it may differ between campaigns.")
+        if e["lower"] > 0:
+            s += " The placebos alone understate the bias: without the tests these lifts would be too high."
+        elif e["upper"] < 0:
+            s += " The placebos alone overstate the bias: without the tests these lifts would be too low."
+    s += (f" Leaving each tested campaign's test out, the model predicted its result within the {L}% predictive "
+          f"interval for {inside} of {n}.")
+    if n < 5:
+        s += " With so few tests the excess bias is still uncertain; each further test narrows it."
+    return s
+
+
+def placebo_heldout_sentence(t: ReportTables) -> str:
+    """The leave-one-placebo-out coverage in words."""
+    h = t.heldout_placebos
+    if h is None or h.empty:
+        return ""
+    L = int(round(t.level * 100))
+    n, inside = len(h), int(h["inside"].sum())
+    s = (f"Each placebo predicted from all the other data (its own left out): {inside} of {n} fall inside their "
+         f"{L}% predictive interval (about {L}% expected).")
+    if n >= 10 and inside / n < t.level - 0.15:
+        s += (" Far fewer than expected: the placebos' biases differ more than the model allows, so the target's "
+              "may too; treat the intervals as too narrow.")
+    unreliable = int((~h["check reliable"]).sum())
+    if unreliable:
+        s += f" For {unreliable} the check is approximate (a placebo that dominates its campaign's bias)."
     return s

@@ -24,12 +24,14 @@ __all__ = ["write_report", "write_xlsx"]
 
 #: Excel number format of each number kind of reports.tables.COLUMNS (money adds the currency).
 XLSX_FORMATS = {"int": "#,##0", "count": "#,##0", "share": "0.0%", "pct": "+0.0%;-0.0%;0.0%", "prob": "0%",
+                "logodds": "+0.000;-0.000;0.000", "spreads": "0.0", "evalue": "0.00",
                 "ratio": '0.00"x"', "money": "#,##0.00", "text": "@"}
 
 
 def _definitions(level: float, currency: str) -> pd.DataFrame:
     """The definitions sheet: each column of the results, its unit and meaning."""
     from liftpool.models.estimands import PROBABILITIES, QUANTITIES
+    from liftpool.models.sensitivity import TIP_MEANINGS
 
     rows = []
     for key, (_, kind) in COLUMNS.items():
@@ -37,7 +39,8 @@ def _definitions(level: float, currency: str) -> pd.DataFrame:
         for suffix in ("_lower50", "_upper50", "_lower", "_upper"):
             if key.endswith(suffix):
                 base = key[: -len(suffix)]
-        meaning = QUANTITIES.get(base, (None, ""))[1] or PROBABILITIES.get(base, (None, None, ""))[2]
+        meaning = (QUANTITIES.get(base, (None, ""))[1] or PROBABILITIES.get(base, (None, None, ""))[2]
+                   or TIP_MEANINGS.get(key, ""))
         if key.endswith(("_lower50", "_upper50")):
             meaning = f"{'lower' if 'lower' in key else 'upper'} end of the 50% credible interval"
         elif key.endswith(("_lower", "_upper")):
