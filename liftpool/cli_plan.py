@@ -8,7 +8,7 @@ __all__ = ["register", "cmd_plan"]
 
 #: PlanInputs fields that have a command-line flag of the same name
 FIELDS = ("users", "seen_share", "baseline_rate", "lift", "placebos", "campaigns", "level", "placebo_rate",
-          "bias_mean", "bias_sd", "residual_sd", "lift_sd")
+          "bias_mean", "bias_sd", "residual_sd", "lift_sd", "excess_sd", "test_se")
 
 
 def register(sub, common) -> None:
@@ -35,9 +35,16 @@ def register(sub, common) -> None:
     g.add_argument("--residual-sd", type=float, help="spread of one outcome's own bias (default 0.05)")
     g.add_argument("--lift-sd", type=float, help="spread of true lifts across campaigns (default 0.1)")
     g.add_argument("--no-bias", action="store_true", help="switch the bias terms off (randomized-test arithmetic)")
+    g.add_argument("--excess-sd", type=float,
+                   help="spread across campaigns of the target's bias beyond its placebos' (default 0.05)")
+    g.add_argument("--test-se", type=float,
+                   help="standard error of one randomized test's lift, log scale (default 0.05, about +-5%%)")
     g = p.add_argument_group("questions")
     g.add_argument("--target-width", type=float, help="solve the users for this width (relative-lift points, 0.05 = 5)")
     g.add_argument("--power", type=float, help="solve the users for this chance that the interval excludes zero")
+    g.add_argument("--excess-width", type=float,
+                   help="solve the randomized tests needed for this interval width of the target's excess bias "
+                        "(log odds, e.g. 0.1)")
     g.add_argument("--simulate", type=int, metavar="N",
                    help="cross-check by N simulated data sets fitted with the quick mode")
     g.add_argument("--out", help="new folder for plan.json, width_curve.csv and width_vs_users.png")
@@ -68,7 +75,7 @@ def cmd_plan(args, console) -> int:
             raise InputError(problem="--fit and --campaign need a workspace",
                              fix="give the workspace first: liftpool plan WS --fit ID")
         inp = PlanInputs.from_mapping(given)
-    p = plan(inp, target_width=args.target_width, power=args.power)
+    p = plan(inp, target_width=args.target_width, power=args.power, excess_target_width=args.excess_width)
     console.out(p.render())
     sim = None
     if args.simulate:

@@ -43,7 +43,7 @@ from liftpool.data_prep.errors import ConfigError
 from liftpool.data_prep.options import OptionsMixin
 
 __all__ = ["PlanInputs", "Plan", "variance_parts", "plan", "width_curve", "plan_inputs_from_fit",
-           "simulate_plan", "PLAN_ASSUMPTIONS"]
+           "simulate_plan", "PLAN_ASSUMPTIONS", "excess_width", "tests_for_excess_width"]
 
 #: What every plan assumes (printed with it).
 PLAN_ASSUMPTIONS = (
@@ -87,6 +87,14 @@ class PlanInputs(OptionsMixin):
         Spread of one outcome's own bias around its campaign's bias (log odds).
     lift_sd : float
         Spread of the true lifts across campaigns (log odds); used when ``campaigns > 1``.
+    excess_sd : float
+        Spread across campaigns of the target's excess bias over its placebos' (log odds): what
+        randomized tests measure (docs/model.md).
+    test_se : float
+        Standard error of one randomized test's lift among the exposed, on the log scale (about the
+        relative standard error: 0.05 for +-5%).
+    excess_mean_scale : float
+        Prior scale of the excess bias's mean (the model's ``excess_mean_scale``).
     bias : bool
         False switches the bias terms off (a randomized test's arithmetic: then the plan is the
         standard two-proportion calculation).
@@ -106,6 +114,9 @@ class PlanInputs(OptionsMixin):
     bias_sd: float = 0.10
     residual_sd: float = 0.05
     lift_sd: float = 0.10
+    excess_sd: float = 0.05
+    test_se: float = 0.05
+    excess_mean_scale: float = 0.25
     bias: bool = True
     source: str = "assumed"
     extra: dict[str, Any] = field(default_factory=dict, repr=False, compare=False)
@@ -124,6 +135,9 @@ class PlanInputs(OptionsMixin):
             ("bias_sd", self.bias_sd >= 0, "a spread >= 0 (log odds)"),
             ("residual_sd", self.residual_sd >= 0, "a spread >= 0 (log odds)"),
             ("lift_sd", self.lift_sd >= 0, "a spread >= 0 (log odds)"),
+            ("excess_sd", self.excess_sd >= 0, "a spread >= 0 (log odds)"),
+            ("test_se", self.test_se > 0, "a positive standard error (log scale), e.g. 0.05"),
+            ("excess_mean_scale", self.excess_mean_scale > 0, "a positive prior scale, e.g. 0.25"),
         ]
         if self.placebo_rate is not None:
             checks.append(("placebo_rate", 0 < self.placebo_rate < 1, "a rate strictly between 0 and 1"))
@@ -304,6 +318,13 @@ class Plan:
     users_for_power : float or None
         Users needed for the interval to exclude zero with probability ``power``.
     target_width, power : float or None
+    excess_target_width : float or None
+        Wanted width of the interval of the excess bias's mean (log odds).
+    tests_for_excess_width : int or None
+        Randomized tests (on campaigns like this one) needed for it (None: not reachable).
+    excess_widths : dict
+        The excess bias's interval width (log odds) after 1, 2, 4 and 8 tests, and its floor for an
+        untested campaign (``excess_sd`` itself remains: tests narrow the mean, not the spread).
     warnings : list of str
         What makes this plan optimistic (e.g. too few placebo estimates to learn the bias spread).
     """
@@ -319,6 +340,9 @@ class Plan:
     users_for_power: float | None = None
     target_width: float | None = None
     power: float | None = None
+    excess_target_width: float | None = None
+    tests_for_excess_width: int | None = None
+    excess_widths: dict = field(default_factory=dict)
     warnings: list = field(default_factory=list)
 
     def to_dict(self) -> dict:
@@ -351,13 +375,51 @@ class Plan:
             lines.append(f"  users for a {100 * self.power:.0f}% chance to exclude zero: "
                          + (f"{self.users_for_power:,.0f}" if self.users_for_power is not None else
                             "not reachable at this lift (the floor is too wide)"))
+        if self.excess_widths:
+            ew = self.excess_widths
+            lines.append("  randomized tests: interval width of the target's excess bias (log odds) after "
+                         + ", ".join(f"{k} test{'s' if k != 1 else ''} {ew[k]:.3f}" for k in (1, 2, 4, 8))
+                         + f"; an untested campaign keeps the excess spread ({i.excess_sd:.3g}) on top")
+        if self.excess_target_width is not None:
+            lines.append(f"  randomized tests for an excess-bias width of {self.excess_target_width:.3f} (log odds): "
+                         + (f"{self.tests_for_excess_width}" if self.tests_for_excess_width is not None else
+                            "not reachable with tests this precise"))
         lines += [f"  warning: {w}" for w in self.warnings]
         lines.append("assumptions:")
         lines += [f"  - {a}" for a in PLAN_ASSUMPTIONS]
         return "\n".join(lines)
 
 
-def plan(inp: PlanInputs, target_width: float | None = None, power: float | None = None) -> Plan:
+def _test_variance(inp: PlanInputs) -> float:
+    """What one randomized test tells about the excess bias: the variance of (observational estimate - test).
+
+    The campaign's observational estimate (unpooled: its own target and placebos) minus the test's
+    lift measures the excess bias plus the target's own residual; its variance adds the test's.
+    """
+    return variance_parts(inp)["unpooled"] + inp.test_se**2 + inp.excess_sd**2
+
+
+def excess_width(inp: PlanInputs, tests: int) -> float:
+    """Width (log odds) of the interval of the excess bias's mean after ``tests`` randomized tests.
+
+    A normal approximation: each test measures the excess with the variance of
+    :func:`_test_variance`, and the mean's prior is ``N(0, excess_mean_scale)``.
+    """
+    var = 1.0 / (1.0 / inp.excess_mean_scale**2 + tests / _test_variance(inp))
+    return 2.0 * _z(inp.level) * float(np.sqrt(var))
+
+
+def tests_for_excess_width(inp: PlanInputs, width: float, most: int = 10_000) -> int | None:
+    """The fewest randomized tests for an excess-bias interval of at most ``width`` (None beyond ``most``)."""
+    need = (2.0 * _z(inp.level) / width) ** 2 - 1.0 / inp.excess_mean_scale**2
+    if need <= 0:
+        return 0
+    k = int(np.ceil(need * _test_variance(inp) - 1e-9))
+    return k if k <= most else None
+
+
+def plan(inp: PlanInputs, target_width: float | None = None, power: float | None = None,
+         excess_target_width: float | None = None) -> Plan:
     """Plan one campaign.
 
     Parameters
@@ -367,11 +429,17 @@ def plan(inp: PlanInputs, target_width: float | None = None, power: float | None
         Wanted interval width in relative-lift points (0.05 = 5 points); the users needed are solved.
     power : float, optional
         Wanted probability that the interval excludes zero; the users needed are solved.
+    excess_target_width : float, optional
+        Wanted width (log odds) of the interval of the target's excess bias; the randomized tests
+        needed are solved (:func:`tests_for_excess_width`).
 
     Returns
     -------
     Plan
     """
+    if excess_target_width is not None and not excess_target_width > 0:
+        raise ConfigError(problem=f"excess-bias width must be positive, got {excess_target_width!r}",
+                          fix="give it on the log-odds scale, e.g. 0.1")
     if target_width is not None and not target_width > 0:
         raise ConfigError(problem=f"target width must be positive, got {target_width!r}",
                           fix="give it in relative-lift points, e.g. 0.05 for 5 points")
@@ -388,6 +456,11 @@ def plan(inp: PlanInputs, target_width: float | None = None, power: float | None
             f"only {int(inp.campaigns) * int(inp.placebos)} placebo estimate(s) in the portfolio: the spread of "
             "the bias will come mostly from the prior, and the real interval may be wider than planned; "
             "add placebo outcomes, or check with a simulation (--simulate)")
+    if inp.bias:
+        out.excess_widths = {k: excess_width(inp, k) for k in (1, 2, 4, 8)}
+        if excess_target_width is not None:
+            out.excess_target_width = excess_target_width
+            out.tests_for_excess_width = tests_for_excess_width(inp, excess_target_width)
     if target_width is not None:
         def narrowness(n):
             a, b = _interval(inp, variance_parts(inp, n)["pooled"])
@@ -452,6 +525,8 @@ def plan_inputs_from_fit(fit, campaign: str | None = None, **overrides) -> PlanI
                             "lift": float(np.expm1(lm)), "placebos": max(placebos, 1 if fit.corrected else 0),
                             "campaigns": len(camps), "level": fit.settings.level,
                             "lift_sd": mean("lift_sd", 0.0), "bias": bool(fit.corrected),
+                            "excess_sd": mean("excess_sd", PlanInputs.excess_sd),
+                            "excess_mean_scale": fit.settings.excess_mean_scale,
                             "source": f"{fit.mode} fit posterior means"}
     if fit.corrected:
         if fit.mode == "quick":  # the quick mode has one bias distribution for the portfolio

@@ -136,8 +136,10 @@ def tipping_points(ds: xr.Dataset, level: float, residual_sd: float | None = Non
     if "incremental_revenue" in ds:
         inc = ds["incremental_conversions"].values.reshape(-1, ds.sizes["unit"])
         rev = ds["incremental_revenue"].values.reshape(-1, ds.sizes["unit"])
-        with np.errstate(divide="ignore", invalid="ignore"):
-            vpc = np.nanmedian(rev / inc, axis=0)  # the value per conversion (a constant per unit)
+        ratio = np.where(np.isfinite(rev) & (inc != 0), rev / np.where(inc != 0, inc, 1.0), np.nan)
+        vpc = np.full(ratio.shape[1], np.nan)  # the value per conversion (a constant per unit)
+        has = np.isfinite(ratio).any(axis=0)
+        vpc[has] = np.nanmedian(ratio[:, has], axis=0)
         spend = ds["spend"].values
         value = {i: (float(spend[i]), float(vpc[i])) for i in range(len(names))
                  if np.isfinite(spend[i]) and np.isfinite(vpc[i]) and vpc[i] > 0}

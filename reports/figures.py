@@ -315,7 +315,7 @@ def _heldout_placebo_figure(t: ReportTables) -> bytes | None:
     n_in = int(t.heldout_placebos["inside"].sum())
     more = f"; {len(h)} furthest out shown" if len(h) < n_all else ""
     ax.set_title(f"Each placebo predicted without itself: {n_in} of {n_all} inside{more}")
-    ax.legend(loc="best", fontsize=8)
+    ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.6 / (0.36 * len(h) + 1.3)), ncol=3, fontsize=8, frameon=False)
     return png_bytes(fig)
 
 
@@ -337,13 +337,14 @@ def _tests_figure(t: ReportTables) -> bytes | None:
         ax.plot(d[med], y + off, m, color=color, markersize=5, markerfacecolor="white" if m == "o" else color,
                 label=label)
     ax.axvline(0, color="black", linewidth=0.8)
-    ax.set_yticks(y, [_plain(f"{c} ({n})") if str(n) != str(c) else _plain(c)
+    ax.set_yticks(y, [_plain(str(n)) if str(c) in str(n) else _plain(f"{c} ({n})")
                       for c, n in zip(d["campaign"], d["test"], strict=True)])
     ticks = _spaced_ticks(ax, (-0.5, -0.25, -0.1, 0, 0.1, 0.25, 0.5, 1.0))
     ax.set_xticks(ticks, [f"{v:+.0%}" for v in ticks])
     ax.set_xlabel(f"lift among exposed users (median and {t.level:.0%} interval)")
     ax.set_title(f"Randomized tests against the model: {int(d['inside'].sum())} of {len(d)} predicted")
-    ax.legend(loc="best", fontsize=8)
+    ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.7 / (0.62 * len(d) + 1.4)), ncol=3, fontsize=8,
+              frameon=False)
     return png_bytes(fig)
 
 

@@ -314,7 +314,7 @@ def _heldout_tables(fit: FitResult, summary: pd.DataFrame) -> tuple[pd.DataFrame
             f"predicted test result, {L}% lower": ht["lower"].to_numpy(),
             f"predicted test result, {L}% upper": ht["upper"].to_numpy(),
             "inside": ht["covered"].astype(bool).to_numpy(),
-            "check reliable": (ht["pareto_k"] <= KHAT_LIMIT).to_numpy(),
+            "check reliable": ~(ht["pareto_k"] > KHAT_LIMIT).to_numpy(),
         })
     hp = h[h["kind"] == "placebo"]
     placebos = None
@@ -325,5 +325,5 @@ def _heldout_tables(fit: FitResult, summary: pd.DataFrame) -> tuple[pd.DataFrame
             "predicted from the rest, median": hp["median"].to_numpy(),
             f"predicted, {L}% lower": hp["lower"].to_numpy(), f"predicted, {L}% upper": hp["upper"].to_numpy(),
             "inside": hp["covered"].astype(bool).to_numpy(),
-            "check reliable": (hp["pareto_k"] <= KHAT_LIMIT).to_numpy()})
+            "check reliable": ~(hp["pareto_k"] > KHAT_LIMIT).to_numpy()})
     return tests, placebos
