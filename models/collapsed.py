@@ -50,7 +50,7 @@ from liftpool.models.evidence import (
     excess_active,
     lift_given_tests,
     normal_update,
-    tests_loglik,
+    evidence_loglik,
 )
 from liftpool.models.settings import ModelSettings
 
@@ -468,7 +468,7 @@ def build_collapsed_model(design, curves: CurveSet, s: ModelSettings, tests: Cam
             mu_e = pm.Normal("excess_mean", 0.0, s.excess_mean_scale)
             sd_e = pm.HalfNormal("excess_sd", s.excess_sd_scale)
         if tests.n_tested:
-            pm.Potential("tests_loglik", tests_loglik(centre, lift_sd, tests, log=pt.log))
+            pm.Potential("evidence_loglik", evidence_loglik(centre, lift_sd, tests, log=pt.log))
         # the target's excess over b: lift (given its tests) + excess bias + its own residual
         m_l, v_l = centre, lift_sd**2
         if tests.n_tested:  # only the tested campaigns' entries change (no arithmetic with zero masks in the graph)

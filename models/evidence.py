@@ -14,7 +14,7 @@ tested campaigns, and the excess's mean and spread are learned and applied to ev
 
 Given the population parameters the lift's prior is ``N(centre_c, spread_c)``; a test turns it into
 ``N(m_c, v_c)`` (the normal-normal update, :func:`normal_update`) and contributes its marginal
-density ``N(y_c | centre_c, sqrt(spread_c^2 + se_c^2))`` (:func:`tests_loglik`).  Both the collapsed
+density ``N(y_c | centre_c, sqrt(spread_c^2 + se_c^2))`` (:func:`evidence_loglik`).  Both the collapsed
 sampler and the quick mode use these two functions (with NumPy or PyTensor arithmetic).
 """
 
@@ -27,7 +27,7 @@ import pandas as pd
 
 from liftpool.models.settings import ModelSettings
 
-__all__ = ["CampaignTests", "campaign_tests", "lift_given_tests", "normal_update", "tests_loglik", "excess_active"]
+__all__ = ["CampaignTests", "campaign_tests", "lift_given_tests", "normal_update", "evidence_loglik", "excess_active"]
 
 
 @dataclass(frozen=True)
@@ -81,7 +81,7 @@ def lift_given_tests(centre, spread, t: CampaignTests):
     return np.where(tested, m, centre), np.where(tested, v, v0)
 
 
-def tests_loglik(centre, spread, t: CampaignTests, log=np.log):
+def evidence_loglik(centre, spread, t: CampaignTests, log=np.log):
     """Sum over the tested campaigns of ``log N(y_c | centre_c, sqrt(spread_c^2 + se_c^2))``.
 
     ``centre`` and ``spread`` are (C,) NumPy arrays or PyTensor vectors (``log=pt.log``).

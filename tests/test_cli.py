@@ -103,3 +103,36 @@ def test_fit_bad_counts_exit_2(tmp_path):
     r = run("fit", "--counts", counts, "--out", tmp_path / "f")
     assert r.returncode == 2 and "more conversions than users" in r.stderr and "Traceback" not in r.stderr
     assert not (tmp_path / "f").exists()
+
+
+def test_fit_with_randomized_tests_and_report(tmp_path):
+    # a tests file through the command line: converted, used, predicted without itself, shown (escaped) in the
+    # report with the tipping points; a test that cannot be converted is refused with exit 2
+    from liftpool.data_prep.shapes import scaled, shape_counts, shape_experiments
+
+    sh = scaled("few_cells", campaigns=5, tested=2, excess_mean=0.15)
+    counts, truth = shape_counts(sh, 6)
+    counts.to_csv(tmp_path / "c.csv", index=False)
+    tests = shape_experiments(sh, truth, 6)
+    tests["test"] = ["<script>alert(1)</script>", "plain"]
+    tests.to_csv(tmp_path / "t.csv", index=False)
+    r = run("fit", "--counts", tmp_path / "c.csv", "--out", tmp_path / "f", "--quick", "--experiments",
+            tmp_path / "t.csv")
+    assert r.returncode == 0, r.stderr
+    assert (tmp_path / "f" / "tests.csv").is_file() and (tmp_path / "f" / "heldout_check.csv").is_file()
+    info = json.loads((tmp_path / "f" / "fit.json").read_text())["info"]
+    assert info["tests"] == 2 and info["excess_bias"] and info["heldout"]["test"]["n"] == 2
+    r = run("report", "--fit", tmp_path / "f", "--out", tmp_path / "r", "-q")
+    assert r.returncode == 0, r.stderr
+    html = (tmp_path / "r" / "report.html").read_text()
+    assert "<script>" not in html and "&lt;script&gt;" in html
+    assert "Randomized tests beside the model" in html and "How much hidden bias" in html
+    assert "holds unless" in html or "more likely than not unless" in html
+    assert (tmp_path / "r" / "figures" / "randomized_tests.png").is_file()
+    assert set(pd.read_csv(tmp_path / "r" / "tipping_points.csv")["campaign"]) >= {"camp0", "(portfolio)"}
+    bad = tests.assign(measures="assigned", exposed_share=[0.5, 1.5])
+    bad.to_csv(tmp_path / "bad.csv", index=False)
+    r = run("fit", "--counts", tmp_path / "c.csv", "--out", tmp_path / "g", "--quick", "--experiments",
+            tmp_path / "bad.csv")
+    assert r.returncode == 2 and "exposed_share" in r.stderr and "row 2" in r.stderr and "Traceback" not in r.stderr
+    assert not (tmp_path / "g").exists()

@@ -208,3 +208,22 @@ def test_plan_reuses_a_fit_and_the_workspace_command(small_scenario, tmp_path):
     doc = json.loads((out / "plan.json").read_text())
     assert doc["inputs"]["source"] == "quick fit posterior means"
     assert main(["plan", str(ws.path), "--campaign", "no-such-campaign", "-q"]) == 2
+
+
+def test_tests_needed_for_an_excess_width():
+    # the excess bias's mean after k tests is an inverse-variance average; with a flat prior its variance is
+    # statsmodels' fixed-effect variance (reference: statsmodels.stats.meta_analysis.combine_effects)
+    from statsmodels.stats.meta_analysis import combine_effects
+
+    from liftpool.models.planning import PlanInputs, _test_variance, _z, excess_width, plan, tests_for_excess_width
+
+    inp = PlanInputs(excess_mean_scale=1e6, test_se=0.04)
+    v = _test_variance(inp)
+    res = combine_effects(np.array([0.1, -0.2, 0.05, 0.3, 0.0, 0.12]), np.full(6, v))
+    assert excess_width(inp, 6) == pytest.approx(2 * _z(0.9) * res.sd_eff_w_fe, rel=1e-9)
+    inp = PlanInputs(test_se=0.04)
+    k = tests_for_excess_width(inp, 0.15)
+    assert excess_width(inp, k) <= 0.15 < excess_width(inp, k - 1)
+    assert tests_for_excess_width(inp, 10.0) == 0  # the prior alone is that narrow
+    p = plan(inp, excess_target_width=0.15)
+    assert p.tests_for_excess_width == k and "randomized tests for an excess-bias width" in p.render()
