@@ -171,6 +171,17 @@ class FitResult:
                      f"(median and {lvl}% interval):")
         for r in t.itertuples():
             lines.append(f"  {r.campaign:<24s} {r.median:+8.1%}   [{r.lower:+8.1%}, {r.upper:+8.1%}]")
+        post = self.idata.posterior
+        if self.info.get("tests"):
+            line = f"calibrated by {self.info['tests']} randomized test(s)"
+            if "excess_mean" in post:
+                lo, med, hi = np.quantile(post["excess_mean"].values, [(1 - self.level) / 2, 0.5, (1 + self.level) / 2])
+                line += (f": the target's bias exceeds its placebos' by {med:+.3f} log odds "
+                         f"[{lo:+.3f}, {hi:+.3f}], applied to every campaign")
+            h = (self.info.get("heldout") or {}).get("test")
+            if h and h.get("n"):
+                line += f"; each test predicted without itself: {h['covered']} of {h['n']} inside"
+            lines.append(line)
         lines.append(self.diagnostics.render())
         for m in self.flags.messages():
             lines.append("note: " + m)

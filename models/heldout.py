@@ -32,12 +32,21 @@ from scipy import special
 
 from liftpool.models.evidence import CampaignTests
 
-__all__ = ["heldout_checks", "HELDOUT_COLUMNS", "KHAT_LIMIT"]
+__all__ = ["heldout_checks", "HELDOUT_COLUMNS", "KHAT_LIMIT", "STORED_LEVELS", "level_columns"]
 
 #: Pareto k above which importance sampling cannot be trusted (Vehtari et al. 2017; arviz's threshold).
 KHAT_LIMIT = 0.7
+#: Levels whose held-out intervals are stored besides the fit's (a report at another level reads them;
+#: coverage at any level follows from the PIT value).
+STORED_LEVELS = (0.5, 0.8, 0.9, 0.95)
 HELDOUT_COLUMNS = ["kind", "campaign", "item", "observed", "std_error", "lower", "median", "upper", "pit", "covered",
                    "model_lower", "model_median", "model_upper", "pareto_k"]
+
+
+def level_columns(level: float) -> tuple[str, str, str, str]:
+    """The stored columns of the held-out interval at ``level``: predictive lower, upper; model lower, upper."""
+    k = f"{level * 100:g}"
+    return f"lower_{k}", f"upper_{k}", f"model_lower_{k}", f"model_upper_{k}"
 
 
 def _mixture_quantiles(w: np.ndarray, mu: np.ndarray, sd: np.ndarray, qs) -> list[float]:
@@ -128,7 +137,9 @@ def heldout_checks(d, curves, post: dict, s, tests: CampaignTests, tests_table: 
             qobs = _observations(d, curves, c, qpop, q.get("outcome_bias"), tests)
             rows.append(_predict(d, c, qobs, len(qobs) - 1, qpop, level, -1, curves, tests, tests_table,
                                  importance=False))
-    return pd.DataFrame(rows, columns=HELDOUT_COLUMNS)
+    levels = sorted(set(STORED_LEVELS) | {float(level)})
+    extra = [c for lv in levels for c in level_columns(lv)]
+    return pd.DataFrame(rows, columns=HELDOUT_COLUMNS + extra)
 
 
 def _refit_without(d, curves, s, tests: CampaignTests, n_draws: int) -> dict:
@@ -194,11 +205,21 @@ def _predict(d, c: int, obs: list, i: int, pop: dict, level: float, p: int, curv
         w /= w.sum()
         k = float(np.ravel(kk)[0])
     pit = float((w * special.ndtr((val - mu) / sd)).sum())
-    lo, med, hi = _mixture_quantiles(w, mu, sd, [a, 0.5, 1 - a])
+    levels = sorted(set(STORED_LEVELS) | {float(level)})
+    probs = [0.5] + [q for lv in levels for q in ((1 - lv) / 2, (1 + lv) / 2)]
+    qs = dict(zip(probs, _mixture_quantiles(w, mu, sd, probs), strict=True))
+    lo, med, hi = qs[a], qs[0.5], qs[1 - a]
     row = {"kind": kind, "campaign": d.campaigns[c], "pareto_k": k, "pit": pit, "covered": bool(a <= pit <= 1 - a)}
+    f = np.expm1 if kind == "test" else (lambda x: x)  # a test's on the relative scale, a placebo's in log odds
+    mq = (dict(zip(probs, _mixture_quantiles(w, m[:, 1], np.sqrt(V[:, 1, 1]), probs), strict=True))
+          if kind == "test" else {})
+    for lv in levels:
+        cl, cu, ml_, mu_ = level_columns(lv)
+        row[cl], row[cu] = float(f(qs[(1 - lv) / 2])), float(f(qs[(1 + lv) / 2]))
+        row[ml_], row[mu_] = (float(f(mq[(1 - lv) / 2])), float(f(mq[(1 + lv) / 2]))) if mq else (np.nan, np.nan)
     if kind == "test":
         # the lift itself without the test, and the test's predictive, as relative lifts
-        mlo, mmed, mhi = _mixture_quantiles(w, m[:, 1], np.sqrt(V[:, 1, 1]), [a, 0.5, 1 - a])
+        mlo, mmed, mhi = mq[a], mq[0.5], mq[1 - a]
         names = (tests_table.loc[tests_table["campaign"] == d.campaigns[c], "test"].tolist()
                  if tests_table is not None else [])
         y = float(val[0])

@@ -293,11 +293,8 @@ def _heldout_placebo_figure(t: ReportTables) -> bytes | None:
     h = t.heldout_placebos
     if h is None or h.empty:
         return None
-    L = int(round(t.level * 100))
     n_all = len(h)
-    lo_c, hi_c = f"predicted, {L}% lower", f"predicted, {L}% upper"
-    if lo_c not in h.columns:  # the check's own level differs from the report's
-        lo_c, hi_c = [c for c in h.columns if c.startswith("predicted, ")][:2]
+    lo_c, hi_c = [c for c in h.columns if c.startswith("predicted, ")][:2]
     if n_all > MAX_ROWS:  # those furthest outside (or nearest the edge of) their intervals
         mid, half = (h[lo_c] + h[hi_c]) / 2, (h[hi_c] - h[lo_c]) / 2
         h = h.loc[((h["estimate (log odds)"] - mid).abs() / half).sort_values(ascending=False).index[:MAX_ROWS]]

@@ -45,4 +45,12 @@ GLOSSARY = {
                                   "far fewer groups inside their intervals than expected means a poor fit.",
     "cells": "Groups of users alike in how often they were served and other covariates; seen and unseen "
              "users are compared within each cell, so those differences do not count as effect.",
+    "randomized test": "A holdout experiment: users are split at random into a group that may see the ads and a "
+                       "control group that does not. It measures the lift without bias, but there are only a few.",
+    "excess bias": "How far a target's own bias exceeds what its placebos show. Only randomized tests can "
+                   "measure it; with them every campaign's estimate is corrected for it.",
+    "tipping point": "The extra target-only bias (on the log-odds scale) at which a conclusion would flip, for "
+                     "example at which the interval would reach zero. Large values mean a robust conclusion.",
+    "E-value": "How strongly a hidden factor would have to be tied to both seeing the ads and converting (as a "
+               "risk ratio) to explain the lower end of the lift away; 1 means no hidden factor is needed.",
 }

@@ -28,7 +28,7 @@ from liftpool.models.estimands import (
     summarize,
 )
 from liftpool.models.fit import FitResult
-from liftpool.models.heldout import KHAT_LIMIT
+from liftpool.models.heldout import KHAT_LIMIT, level_columns
 from liftpool.models.sensitivity import tipping_points
 from liftpool.models.summary import NEW_CAMPAIGN, PORTFOLIO
 
@@ -122,6 +122,8 @@ class ReportTables:
     #: the excess bias's mean and spread (median, lower, upper) when learned; the residual_sd median
     excess: dict = field(default_factory=dict)
     residual_sd: float | None = None
+    #: the level of the held-out intervals (the report's, or the fit's when it did not store the report's)
+    heldout_level: float | None = None
 
     @property
     def campaigns(self) -> pd.DataFrame:
@@ -278,30 +280,39 @@ def build_tables(fit: FitResult, spend: pd.DataFrame | None = None, prep_campaig
         if k in post:
             lo, hi = interval(post[k].values, level)
             excess[k] = {"median": float(np.median(post[k].values)), "lower": lo, "upper": hi}
-    tests_t, placebos_t = _heldout_tables(fit, summary)
+    tests_t, placebos_t, heldout_level = _heldout_tables(fit, summary, level)
     return ReportTables(results=results, summary=summary, estimands=est, placebos=placebos, shrinkage=shrink,
                         diagnostics=diag, prep=prep, settings=settings,
                         provenance=pd.DataFrame(prov, columns=["item", "value"]),
                         predictive=fit.predictive, currency=currency.upper(), level=level,
                         predictive_level=pp.get("level", fit.level), spend_given=spend is not None,
                         lift_spread=spread, tipping=tipping, tests=tests_t, heldout_placebos=placebos_t, excess=excess,
-                        residual_sd=residual_sd)
+                        residual_sd=residual_sd, heldout_level=heldout_level)
 
 
-def _heldout_tables(fit: FitResult, summary: pd.DataFrame) -> tuple[pd.DataFrame | None, pd.DataFrame | None]:
+def _heldout_tables(fit: FitResult, summary: pd.DataFrame, level: float
+                    ) -> tuple[pd.DataFrame | None, pd.DataFrame | None, float | None]:
     """The tests beside the model without each (and with all), and the placebos' held-out predictions.
 
-    The held-out intervals are at the fit's level (the level they were computed at).
+    The held-out intervals are at the report's level when the fit stored it (the usual levels and the
+    fit's own), otherwise at the fit's level, labelled so; inside or not follows from the PIT value.
     """
     h = fit.heldout
     if h is None or h.empty:
-        return None, None
-    L = int(round(float(fit.info.get("heldout", {}).get("level", fit.level)) * 100))
+        return None, None, None
+    cl, cu, ml_, mu_ = level_columns(level)
+    if cl not in h.columns:  # a level the fit did not store: its own, labelled
+        level = float(fit.info.get("heldout", {}).get("level", fit.level))
+        cl, cu, ml_, mu_ = "lower", "upper", "model_lower", "model_upper"
+    L = f"{level * 100:g}"
+    a = (1 - level) / 2
+    h = h.assign(covered=(h["pit"] >= a) & (h["pit"] <= 1 - a), lower=h[cl], upper=h[cu], model_lower=h[ml_],
+                 model_upper=h[mu_])
     tests = None
     ht = h[h["kind"] == "test"]
     if len(ht):
         lift = summary[summary["quantity"] == "lift"].set_index("campaign")
-        z = float(stats.norm.ppf(0.5 + fit.level / 2))
+        z = float(stats.norm.ppf(0.5 + level / 2))
         tests = pd.DataFrame({
             "test": ht["item"].to_numpy(), "campaign": ht["campaign"].to_numpy(),
             "test lift among exposed": ht["observed"].to_numpy(),
@@ -326,4 +337,4 @@ def _heldout_tables(fit: FitResult, summary: pd.DataFrame) -> tuple[pd.DataFrame
             f"predicted, {L}% lower": hp["lower"].to_numpy(), f"predicted, {L}% upper": hp["upper"].to_numpy(),
             "inside": hp["covered"].astype(bool).to_numpy(),
             "check reliable": ~(hp["pareto_k"] > KHAT_LIMIT).to_numpy()})
-    return tests, placebos
+    return tests, placebos, level

@@ -184,6 +184,7 @@ def calibration_paragraph(t: ReportTables) -> str:
                 "sentence of each campaign above says how large a target-only bias would overturn its conclusion.")
     n = len(t.tests)
     inside = int(t.tests["inside"].sum())
+    H = f"{(t.heldout_level or t.level) * 100:g}"
     s = (f"{n} randomized test{'s' if n != 1 else ''} ({', '.join(t.tests['test'].astype(str))}) calibrate the "
          "correction. Each test pins its campaign's lift, so the seen-versus-unseen gap there measures the "
          "target's own bias directly.")
@@ -196,7 +197,7 @@ def calibration_paragraph(t: ReportTables) -> str:
             s += " The placebos alone understate the bias: without the tests these lifts would be too high."
         elif e["upper"] < 0:
             s += " The placebos alone overstate the bias: without the tests these lifts would be too low."
-    s += (f" Leaving each tested campaign's test out, the model predicted its result within the {L}% predictive "
+    s += (f" Leaving each tested campaign's test out, the model predicted its result within the {H}% predictive "
           f"interval for {inside} of {n}.")
     if n < 5:
         s += " With so few tests the excess bias is still uncertain; each further test narrows it."
@@ -208,7 +209,7 @@ def placebo_heldout_sentence(t: ReportTables) -> str:
     h = t.heldout_placebos
     if h is None or h.empty:
         return ""
-    L = int(round(t.level * 100))
+    L = f"{(t.heldout_level or t.level) * 100:g}"
     n, inside = len(h), int(h["inside"].sum())
     s = (f"Each placebo predicted from all the other data (its own left out): {inside} of {n} fall inside their "
          f"{L}% predictive interval (about {L}% expected).")

@@ -98,9 +98,14 @@ def test_every_number_equals_the_posterior_recomputed(small):
     lm, ls = post["lift_mean"].values.ravel(), post["lift_sd"].values.ravel()
     i = rng.integers(0, lm.size, 200_000)
     ref = np.expm1(lm[i] + ls[i] * rng.standard_normal(i.size))
-    assert n["lift"] == pytest.approx(np.median(ref), abs=0.01)
-    assert n["lift_lower"] == pytest.approx(np.quantile(ref, 0.05), abs=0.02)
-    assert n["lift_upper"] == pytest.approx(np.quantile(ref, 0.95), abs=0.03)
+    # within 4 Monte Carlo standard errors of the fit's own draws' quantiles (arviz.mcse, quantile method;
+    # the draws of a full fit are autocorrelated) plus the reference's own (200,000 draws)
+    import arviz as az
+
+    own = fit.estimands["lift"].sel(unit="(new campaign)").values
+    for key, q in (("lift", 0.5), ("lift_lower", 0.05), ("lift_upper", 0.95)):
+        tol = 4 * float(az.mcse(own, method="quantile", prob=q)) + 0.005
+        assert n[key] == pytest.approx(np.quantile(ref, q), abs=tol), key
 
 
 def test_xlsx_natural_units_formats_and_pooled_rows(small):
@@ -151,7 +156,10 @@ def test_html_parses_is_self_contained_and_escaped(small):
     p = _Collect()
     p.feed(html)
     assert "script" not in p.tags
-    assert p.tags.count("img") == 5 and all(s.startswith("data:image/png;base64,") for s in p.srcs)
+    figs = sorted(f.name for f in (out / "figures").iterdir())
+    # every figure embedded, the held-out placebos and the sensitivity figure among them (no tests here)
+    assert {"placebo_heldout.png", "sensitivity.png"} <= set(figs) and "randomized_tests.png" not in figs
+    assert p.tags.count("img") == len(figs) and all(s.startswith("data:image/png;base64,") for s in p.srcs)
     assert "&lt;script&gt;alert(1)&lt;/script&gt;" in html
     assert EVIL not in html
     text = " ".join(p.text)
@@ -164,8 +172,10 @@ def test_html_parses_is_self_contained_and_escaped(small):
 def test_plain_language_summary_numbers(small):
     fit, _, spend, out = small
     html = (out / "report.html").read_text()
-    camp = "spring-planters"
-    inc = fit.idata.posterior["incremental_conversions"].sel(campaign=camp).values.ravel()
+    post = fit.idata.posterior["incremental_conversions"]
+    # a campaign whose interval is above zero (so its cost is bounded): the one with the highest lower end
+    camp = str(post.campaign.values[int(np.argmax(post.quantile(0.05, dim=("chain", "draw")).values))])
+    inc = post.sel(campaign=camp).values.ravel()
     s = spend.set_index("campaign").loc[camp, "spend"]
     assert f"most likely added {round(float(np.median(inc))):,} conversions" in html
     # the cost sentence from the spend file and the posterior (bounded here: the interval is above zero)
