@@ -47,10 +47,10 @@ from liftpool.models.conditional import CurveSet
 from liftpool.models.evidence import (
     CampaignTests,
     campaign_tests,
+    evidence_loglik,
     excess_active,
     lift_given_tests,
     normal_update,
-    evidence_loglik,
 )
 from liftpool.models.settings import ModelSettings
 

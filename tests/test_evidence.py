@@ -14,7 +14,7 @@ from scipy import integrate, stats
 from liftpool.data_prep.experiments import check_experiments
 from liftpool.data_prep.shapes import scaled, shape_counts, shape_experiments
 from liftpool.models import ModelSettings, fit_counts
-from liftpool.models.evidence import CampaignTests, lift_given_tests, normal_update, evidence_loglik
+from liftpool.models.evidence import CampaignTests, evidence_loglik, lift_given_tests, normal_update
 from liftpool.models.gaussian import _campaign_terms, _marginal
 
 

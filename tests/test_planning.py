@@ -215,7 +215,14 @@ def test_tests_needed_for_an_excess_width():
     # statsmodels' fixed-effect variance (reference: statsmodels.stats.meta_analysis.combine_effects)
     from statsmodels.stats.meta_analysis import combine_effects
 
-    from liftpool.models.planning import PlanInputs, _test_variance, _z, excess_width, plan, tests_for_excess_width
+    from liftpool.models.planning import (
+        PlanInputs,
+        _test_variance,
+        _z,
+        excess_width,
+        plan,
+        tests_for_excess_width,
+    )
 
     inp = PlanInputs(excess_mean_scale=1e6, test_se=0.04)
     v = _test_variance(inp)
