@@ -228,17 +228,31 @@ def bench_start(campaigns: int = 40, tune: int = 200, draws: int = 100) -> None:
     print(f"  time, ADVI start / jitter start: {res['advi+adapt_diag'] / res['jitter+adapt_diag']:.2f}x", flush=True)
 
 
-def bench_scale(draws: int | None = None, tune: int | None = None, campaigns: int = 200) -> None:
-    """campaigns x 24 cells x 6 outcomes with the default settings (or the draws and tuning given)."""
+def bench_scale(draws: int | None = None, tune: int | None = None, campaigns: int = 200, tests: int = 0) -> None:
+    """campaigns x 24 cells x 6 outcomes with the default settings (or the draws and tuning given).
+
+    With ``tests`` > 0 the first campaigns have randomized tests and every target's bias exceeds its
+    placebos' by about 0.1 (data_prep/shapes.py), so the excess bias is learned.
+    """
+    from dataclasses import replace
+
+    from liftpool.data_prep.experiments import check_experiments
+    from liftpool.data_prep.shapes import shape_experiments
     from liftpool.models.calibration import oracle_lift
 
     sh = bench_shape(campaigns, 24, 6, users_per_cell=400)
+    experiments = None
+    if tests:
+        sh = replace(sh, excess_mean=0.1, excess_sd=0.03, tested=tests, test_se=0.04)
     counts, truth = shape_counts(sh, 2)
+    if tests:
+        experiments = check_experiments(shape_experiments(sh, truth, 2), campaigns=list(truth.campaign))
     print(f"scale: {len(counts):,} count rows ({campaigns} campaigns x 24 cells x 6 outcomes x 2 arms)", flush=True)
     t = time.perf_counter()
     given = {k: v for k, v in (("draws", draws), ("tune", tune)) if v is not None}
     with MemoryWatch() as mem:
-        f = fit_counts(counts, ModelSettings(**given), progress=lambda m: print(m, flush=True))
+        f = fit_counts(counts, ModelSettings(**given), progress=lambda m: print(m, flush=True),
+                       experiments=experiments)
     draws, tune = f.settings.draws, f.settings.tune
     secs = time.perf_counter() - t
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
@@ -246,7 +260,7 @@ def bench_scale(draws: int | None = None, tune: int | None = None, campaigns: in
     ss = f.idata.sample_stats
     post = f.idata.posterior
     n = post.sizes["chain"] * post.sizes["draw"]
-    ess = az.ess(post[[v for v in ("residual_sd", "bias_sd", "lift_sd") if v in post]], method="bulk")
+    ess = az.ess(post[[v for v in ("residual_sd", "bias_sd", "lift_sd", "excess_sd") if v in post]], method="bulk")
     print(f"scale fit ({f.info['likelihood']}, {f.info['free_parameters']} sampled parameters): {tune} tuning + "
           f"{draws} draws x {f.settings.chains} chains: {secs / 60:.1f} min in all (curves {f.info.get('curve_seconds')} s, "
           f"sampling {f.info['sampling_seconds']:.0f} s, completion {f.info.get('completion_seconds')} s); "
@@ -261,7 +275,13 @@ def bench_scale(draws: int | None = None, tune: int | None = None, campaigns: in
     inside = int(((lift["lower"] <= t) & (t <= lift["upper"])).sum())
     width = float((lift["upper"] - lift["lower"]).mean() / (oracle["upper"] - oracle["lower"]).mean())
     print(f"scale known truth: 90% lift intervals cover {inside} of {len(t)} ({inside / len(t):.1%}); "
-          f"mean width {width:.2f}x the oracle's (true spreads fixed)", flush=True)
+          f"mean width {width:.2f}x the oracle's (true spreads fixed, no excess)", flush=True)
+    if tests:
+        em = post["excess_mean"].values.ravel()
+        print(f"scale excess bias (true 0.1): median {np.median(em):.3f}, 90% interval "
+              f"{np.quantile(em, 0.05):.3f} to {np.quantile(em, 0.95):.3f}; held-out tests "
+              f"{f.info['heldout']['test']}", flush=True)
+    print(f"held-out placebos: {f.info['heldout']['placebo']}", flush=True)
     print(f.diagnostics.render())
 
 

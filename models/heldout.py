@@ -89,7 +89,7 @@ def _population(d, post: dict, s, D: int) -> dict:
 
 
 def heldout_checks(d, curves, post: dict, s, tests: CampaignTests, tests_table: pd.DataFrame | None,
-                   level: float, max_draws: int = 2000) -> pd.DataFrame:
+                   level: float, max_draws: int = 1000) -> pd.DataFrame:
     """Leave-one-test-out and leave-one-placebo-out predictions (rows of :data:`HELDOUT_COLUMNS`).
 
     Parameters
@@ -124,11 +124,14 @@ def heldout_checks(d, curves, post: dict, s, tests: CampaignTests, tests_table: 
             and v.shape[0] == D0}
     pop = _population(d, post, s, take.size)
     rows = []
+    batch = []  # every placebo's predictive (mean, sd per draw), then weighed and summarized at once
     for c in range(d.n_campaigns):
         obs = _observations(d, curves, c, pop, post.get("outcome_bias"), tests)
         for i, (kind, p, *_rest) in enumerate(obs):
             if kind == "placebo":
-                rows.append(_predict(d, c, obs, i, pop, level, p, curves, None, None, importance=True))
+                _, _, mu, sd, _ = _conditional(obs, i, pop, c)
+                # on the estimate's own scale: the predictive of (estimate - outcome bias), shifted back
+                batch.append((c, p, mu + (curves.mode[p] - obs[i][4]), sd))
         if tests.has[c]:
             # a test is held out by refitting without it: with few tests, one test moves the excess bias's
             # posterior too far for re-weighting the fit's own draws (Pareto k above 0.7 in trials)
@@ -137,9 +140,72 @@ def heldout_checks(d, curves, post: dict, s, tests: CampaignTests, tests_table: 
             qobs = _observations(d, curves, c, qpop, q.get("outcome_bias"), tests)
             rows.append(_predict(d, c, qobs, len(qobs) - 1, qpop, level, -1, curves, tests, tests_table,
                                  importance=False))
+    rows += _placebo_rows(d, curves, batch, level)
     levels = sorted(set(STORED_LEVELS) | {float(level)})
     extra = [c for lv in levels for c in level_columns(lv)]
-    return pd.DataFrame(rows, columns=HELDOUT_COLUMNS + extra)
+    out = pd.DataFrame(rows, columns=HELDOUT_COLUMNS + extra)
+    return out.sort_values(["campaign", "kind", "item"], kind="stable").reset_index(drop=True)
+
+
+#: Points of the grid on which a batch of held-out predictive CDFs is evaluated and inverted.
+CDF_GRID = 64
+
+
+def _placebo_rows(d, curves, batch: list, level: float) -> list[dict]:
+    """The placebos' held-out rows: Pareto-smoothed weights, PIT and interval ends, all placebos at once."""
+    if not batch:
+        return []
+    import arviz as az
+
+    MU = np.stack([b[2] for b in batch])  # (I, D)
+    SD = np.stack([b[3] for b in batch])
+    VAL = np.array([curves.mode[b[1]] for b in batch])[:, None]
+    logp = -0.5 * ((VAL - MU) / SD) ** 2 - np.log(SD)
+    lw, k = az.psislw(-logp)
+    W = np.exp(np.asarray(lw) - np.asarray(lw).max(axis=1, keepdims=True))
+    W /= W.sum(axis=1, keepdims=True)
+    pit = (W * special.ndtr((VAL - MU) / SD)).sum(axis=1)
+    levels = sorted(set(STORED_LEVELS) | {float(level)})
+    probs = np.array([0.5] + [q for lv in levels for q in ((1 - lv) / 2, (1 + lv) / 2)])
+    Q = _batch_quantiles(W, MU, SD, probs)
+    a = (1 - level) / 2
+    col = {q: j for j, q in enumerate(probs)}
+    rows = []
+    for i, (c, p, _, _) in enumerate(batch):
+        row = {"kind": "placebo", "campaign": d.campaigns[c], "item": str(d.outcomes[d.pair_outcome[p]]),
+               "observed": float(curves.mode[p]), "std_error": float(np.sqrt(1.0 / curves.information[p])),
+               "lower": float(Q[i, col[a]]), "median": float(Q[i, col[0.5]]), "upper": float(Q[i, col[1 - a]]),
+               "pit": float(pit[i]), "covered": bool(a <= pit[i] <= 1 - a), "model_lower": np.nan,
+               "model_median": np.nan, "model_upper": np.nan, "pareto_k": float(np.ravel(k)[i])}
+        for lv in levels:
+            cl, cu, ml_, mu_ = level_columns(lv)
+            row[cl], row[cu] = float(Q[i, col[(1 - lv) / 2]]), float(Q[i, col[(1 + lv) / 2]])
+            row[ml_], row[mu_] = np.nan, np.nan
+        rows.append(row)
+    return rows
+
+
+def _batch_quantiles(W: np.ndarray, MU: np.ndarray, SD: np.ndarray, probs: np.ndarray, chunk: int = 32) -> np.ndarray:
+    """Quantiles (I, len(probs)) of the mixtures sum_s W[i, s] N(MU[i, s], SD[i, s]).
+
+    Each CDF is evaluated on a grid spanning the mixture (:data:`CDF_GRID` points), inverted by linear
+    interpolation, then refined by two Newton steps on the exact CDF; ``chunk`` mixtures at a time
+    (the grid is chunk x CDF_GRID x draws).
+    """
+    if W.shape[0] > chunk:
+        return np.concatenate([_batch_quantiles(W[i:i + chunk], MU[i:i + chunk], SD[i:i + chunk], probs, chunk)
+                               for i in range(0, W.shape[0], chunk)])
+    lo = (MU - 8 * SD).min(axis=1, keepdims=True)
+    hi = (MU + 8 * SD).max(axis=1, keepdims=True)
+    grid = lo + (hi - lo) * np.linspace(0.0, 1.0, CDF_GRID)[None, :]  # (I, G)
+    cdf = np.einsum("is,igs->ig", W, special.ndtr((grid[:, :, None] - MU[:, None, :]) / SD[:, None, :]))
+    x = np.stack([np.array([np.interp(q, cdf[i], grid[i]) for q in probs]) for i in range(W.shape[0])])
+    for _ in range(2):
+        z = (x[:, :, None] - MU[:, None, :]) / SD[:, None, :]
+        F = np.einsum("is,iqs->iq", W, special.ndtr(z))
+        f = np.einsum("is,iqs->iq", W, np.exp(-0.5 * z**2) / (np.sqrt(2 * np.pi) * SD[:, None, :]))
+        x = x - (F - probs[None, :]) / np.maximum(f, 1e-300)
+    return x
 
 
 def _refit_without(d, curves, s, tests: CampaignTests, n_draws: int) -> dict:
@@ -178,7 +244,22 @@ def _predict(d, c: int, obs: list, i: int, pop: dict, level: float, p: int, curv
     """Observation ``i`` of campaign ``c`` predicted from the campaign's other observations and the prior."""
     import arviz as az
 
-    a = (1 - level) / 2
+    D = pop["mb"].shape[0]
+    kind, m, mu, sd, V = _conditional(obs, i, pop, c)
+    val, var = obs[i][4], obs[i][5]
+    k = np.nan
+    w = np.full(D, 1.0 / D)
+    if importance:  # the fit's draws without the item: divided by its predictive density given them
+        logp = -0.5 * ((val - mu) / sd) ** 2 - np.log(sd)
+        lw, kk = az.psislw(-logp[None, :])
+        w = np.exp(np.asarray(lw).ravel())
+        w /= w.sum()
+        k = float(np.ravel(kk)[0])
+    return _row(d, c, kind, p, val, var, w, mu, sd, m, V, k, level, curves, tests, tests_table)
+
+
+def _conditional(obs: list, i: int, pop: dict, c: int):
+    """Observation ``i``'s predictive given the campaign's other observations, per draw: (kind, m, mu, sd, V)."""
     D = pop["mb"].shape[0]
     P = np.zeros((D, 2, 2))
     P[:, 0, 0] = 1.0 / pop["vb"]
@@ -196,14 +277,12 @@ def _predict(d, c: int, obs: list, i: int, pop: dict, level: float, p: int, curv
     m = np.einsum("dij,dj->di", V, eta)
     mu = m @ h
     sd = np.sqrt(np.einsum("i,dij,j->d", h, V, h) + var)
-    k = np.nan
-    w = np.full(D, 1.0 / D)
-    if importance:  # the fit's draws without the item: divided by its predictive density given them
-        logp = -0.5 * ((val - mu) / sd) ** 2 - np.log(sd)
-        lw, kk = az.psislw(-logp[None, :])
-        w = np.exp(np.asarray(lw).ravel())
-        w /= w.sum()
-        k = float(np.ravel(kk)[0])
+    return kind, m, mu, sd, V
+
+
+def _row(d, c, kind, p, val, var, w, mu, sd, m, V, k, level, curves, tests, tests_table) -> dict:
+    """One held-out row from the weighted predictive mixture."""
+    a = (1 - level) / 2
     pit = float((w * special.ndtr((val - mu) / sd)).sum())
     levels = sorted(set(STORED_LEVELS) | {float(level)})
     probs = [0.5] + [q for lv in levels for q in ((1 - lv) / 2, (1 + lv) / 2)]

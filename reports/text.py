@@ -146,9 +146,14 @@ def portfolio_paragraph(t: ReportTables) -> str:
     return s
 
 
+def _logodds(x: float) -> str:
+    """A small log-odds amount with enough digits to be non-zero on the page."""
+    return f"{x:.2f}" if abs(x) >= 0.095 else f"{x:.3f}"
+
+
 def _bias_amount(x: float, spread: float | None) -> str:
     """A tipping point in words: log odds, and in outcome-to-outcome spreads when known."""
-    txt = f"{x:.2f} on the log-odds scale (odds {math.exp(x):.2f} times as high)"
+    txt = f"{_logodds(x)} on the log-odds scale (odds {math.exp(x):.2f} times as high)"
     if spread and spread > 0:
         txt += f", {x / spread:.1f} times the spread of the bias between outcomes"
     return txt
@@ -169,7 +174,7 @@ def tipping_sentence(r: dict, t: ReportTables, whose: str = "its target's") -> s
              f"than {_bias_amount(pos, sp)}." if _finite(pos) and pos > 0 else "")
     paid = r.get("tip_paid", np.nan)
     if _finite(paid) and paid > 0:
-        s += f" It more likely than not paid for itself unless that excess is above {paid:.2f}."
+        s += f" It more likely than not paid for itself unless that excess is above {_logodds(paid)}."
     return s
 
 
