@@ -881,6 +881,9 @@ def heldout_info(heldout: pd.DataFrame, level: float) -> dict:
 
 def _check_tests(d: Design, s: ModelSettings, experiments: pd.DataFrame | None):
     """The randomized tests combined per campaign; what the model cannot use is refused (exit 2)."""
+    if s.excess_bias == "on" and s.likelihood != "conditional":
+        raise ConfigError(problem="the excess bias is a term of the conditional likelihood (the default), not of "
+                                  f"likelihood '{s.likelihood}'", fix="leave excess_bias at 'auto' or 'off'")
     if experiments is None or len(experiments) == 0:
         return campaign_tests(d.campaigns, None)
     if s.likelihood != "conditional":

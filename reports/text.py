@@ -165,12 +165,13 @@ def tipping_sentence(r: dict, t: ReportTables, whose: str = "its target's") -> s
     if not _finite(tip):
         return ""
     sp = t.residual_sd
+    than = "what the placebos and the randomized tests show" if t.excess else "the placebos'"
     if tip > 0:
-        s = (f" The conclusion that it added conversions holds unless {whose} own bias exceeds the placebos' "
+        s = (f" The conclusion that it added conversions holds unless {whose} own bias exceeds {than} "
              f"by more than {_bias_amount(tip, sp)}.")
     else:
         pos = r.get("tip_positive", np.nan)
-        s = (f" A positive lift is more likely than not unless {whose} own bias exceeds the placebos' by more "
+        s = (f" A positive lift is more likely than not unless {whose} own bias exceeds {than} by more "
              f"than {_bias_amount(pos, sp)}." if _finite(pos) and pos > 0 else "")
     paid = r.get("tip_paid", np.nan)
     if _finite(paid) and paid > 0:

@@ -83,3 +83,19 @@ def test_paid_tipping_point():
     inc2 = ds["incremental_conversions"].values[0, :, 0] + ds["counterfactual_conversions"].values[0, :, 0] - \
         10_000 * expit(logit(ds["counterfactual_conversions"].values[0, :, 0] / 10_000) + tip)
     assert np.mean(inc2 * 50.0 > spend["spend"][0]) == pytest.approx(0.5, abs=0.01)
+
+
+def test_tipping_sentences():
+    from types import SimpleNamespace
+
+    from liftpool.reports.text import tipping_sentence
+
+    t = SimpleNamespace(residual_sd=0.05, excess={})
+    s = tipping_sentence({"tip_interval": 0.12, "tip_positive": 0.2, "tip_paid": 0.004}, t)
+    assert "holds unless its target's own bias exceeds the placebos' by more than 0.12 on the log-odds scale" in s
+    assert "2.4 times the spread of the bias between outcomes" in s and "above 0.004" in s
+    s = tipping_sentence({"tip_interval": -0.05, "tip_positive": 0.1, "tip_paid": -0.2}, t)
+    assert s.startswith(" A positive lift is more likely than not unless") and "paid" not in s
+    t = SimpleNamespace(residual_sd=None, excess={"excess_mean": {}})
+    s = tipping_sentence({"tip_interval": 0.3, "tip_positive": 0.4, "tip_paid": float("nan")}, t)
+    assert "what the placebos and the randomized tests show" in s and "spread" not in s
