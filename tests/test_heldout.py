@@ -60,3 +60,20 @@ def test_placebo_heldout_coverage_is_near_nominal_on_known_truth():
     assert (h["pareto_k"] < 0.7).mean() > 0.9
     # the PIT values spread over (0, 1) rather than piling at the ends
     assert 0.3 < h["pit"].mean() < 0.7
+
+
+def test_mixture_quantiles_against_root_finding():
+    # reference: scipy.optimize.brentq on the mixture's CDF built from scipy.stats.norm.cdf
+    from scipy import optimize, stats
+
+    from liftpool.models.heldout import _batch_quantiles
+
+    rng = np.random.default_rng(0)
+    W = rng.dirichlet(np.ones(300), size=3)
+    MU, SD = rng.normal(0, 1, (3, 300)), rng.uniform(0.05, 1.0, (3, 300))
+    probs = np.array([0.5, 0.05, 0.95, 0.001])
+    Q = _batch_quantiles(W, MU, SD, probs)
+    for i in range(3):
+        for j, q in enumerate(probs):
+            ref = optimize.brentq(lambda x: (W[i] * stats.norm.cdf(x, MU[i], SD[i])).sum() - q, -30, 30, xtol=1e-12)  # noqa: B023
+            assert Q[i, j] == pytest.approx(ref, abs=1e-7)
