@@ -118,11 +118,7 @@ def heldout_checks(d, curves, post: dict, s, tests: CampaignTests, tests_table: 
     batch = []  # every placebo's predictive (mean, sd per draw), then weighed and summarized at once
     for c in range(d.n_campaigns):
         obs = _observations(d, curves, c, pop, post.get("outcome_bias"), tests)
-        for i, (kind, p, *_rest) in enumerate(obs):
-            if kind == "placebo":
-                _, _, mu, sd, _ = _conditional(obs, i, pop, c)
-                # on the estimate's own scale: the predictive of (estimate - outcome bias), shifted back
-                batch.append((c, p, mu + (curves.mode[p] - obs[i][4]), sd))
+        batch += _placebo_predictives(obs, pop, c, curves)
         if tests.has[c]:
             # a test is held out by refitting without it: with few tests, one test moves the excess bias's
             # posterior too far for re-weighting the fit's own draws (Pareto k above 0.7 in trials)
@@ -157,19 +153,17 @@ def _placebo_rows(d, curves, batch: list, level: float) -> list[dict]:
     Q = _batch_quantiles(W, MU, SD, probs)
     a = (1 - level) / 2
     col = {q: j for j, q in enumerate(probs)}
-    rows = []
-    for i, (c, p, _, _) in enumerate(batch):
-        row = {"kind": "placebo", "campaign": d.campaigns[c], "item": str(d.outcomes[d.pair_outcome[p]]),
-               "observed": float(curves.mode[p]), "std_error": float(np.sqrt(1.0 / curves.information[p])),
-               "lower": float(Q[i, col[a]]), "median": float(Q[i, col[0.5]]), "upper": float(Q[i, col[1 - a]]),
-               "pit": float(pit[i]), "covered": bool(a <= pit[i] <= 1 - a), "model_lower": np.nan,
-               "model_median": np.nan, "model_upper": np.nan, "pareto_k": float(np.ravel(k)[i])}
-        for lv in levels:
-            cl, cu, ml_, mu_ = level_columns(lv)
-            row[cl], row[cu] = float(Q[i, col[(1 - lv) / 2]]), float(Q[i, col[(1 + lv) / 2]])
-            row[ml_], row[mu_] = np.nan, np.nan
-        rows.append(row)
-    return rows
+    pairs = np.array([b[1] for b in batch])
+    cols = {"kind": "placebo", "campaign": np.asarray(d.campaigns, dtype=object)[[b[0] for b in batch]],
+            "item": np.asarray(d.outcomes, dtype=object)[d.pair_outcome[pairs]].astype(str),
+            "observed": curves.mode[pairs], "std_error": np.sqrt(1.0 / curves.information[pairs]),
+            "lower": Q[:, col[a]], "median": Q[:, col[0.5]], "upper": Q[:, col[1 - a]], "pit": pit,
+            "covered": (pit >= a) & (pit <= 1 - a), "model_lower": np.nan, "model_median": np.nan,
+            "model_upper": np.nan, "pareto_k": np.ravel(k)}
+    for lv in levels:
+        cl, cu, ml_, mu_ = level_columns(lv)
+        cols[cl], cols[cu], cols[ml_], cols[mu_] = Q[:, col[(1 - lv) / 2]], Q[:, col[(1 + lv) / 2]], np.nan, np.nan
+    return pd.DataFrame(cols).to_dict(orient="records")
 
 
 def _batch_quantiles(W: np.ndarray, MU: np.ndarray, SD: np.ndarray, probs: np.ndarray) -> np.ndarray:
@@ -287,6 +281,32 @@ def _predict(d, c: int, obs: list, i: int, pop: dict, level: float, p: int, curv
         w /= w.sum()
         k = float(np.ravel(kk)[0])
     return _row(d, c, kind, p, val, var, w, mu, sd, m, V, k, level, curves, tests, tests_table)
+
+
+def _placebo_predictives(obs: list, pop: dict, c: int, curves) -> list:
+    """Every placebo of campaign ``c`` predicted from the campaign's other observations, at once.
+
+    A placebo observes the bias alone (coefficients (1, 0)), so leaving it out changes only the first
+    entry of the campaign's information and of its information-weighted sum. Returns ``(c, pair, mu,
+    sd)`` on the estimate's own scale (the outcome bias added back).
+    """
+    idx = [j for j, o in enumerate(obs) if o[0] == "placebo"]
+    if not idx:
+        return []
+    D = pop["mb"].shape[0]
+    P00, P01, P11 = 1.0 / pop["vb"], np.zeros(D), 1.0 / pop["vl"][:, c]
+    e0, e1 = pop["mb"] / pop["vb"], pop["centre"][:, c] / pop["vl"][:, c]
+    for _, _, hb, hl, val, var in obs:
+        P00, P01, P11 = P00 + hb * hb / var, P01 + hb * hl / var, P11 + hl * hl / var
+        e0, e1 = e0 + hb * val / var, e1 + hl * val / var
+    val = np.stack([obs[j][4] for j in idx])  # (n, D)
+    var = np.stack([obs[j][5] for j in idx])
+    q00, f0 = P00 - 1.0 / var, e0 - val / var
+    det = q00 * P11 - P01**2
+    v00 = P11 / det
+    mu = v00 * f0 - P01 / det * e1
+    sd = np.sqrt(v00 + var)
+    return [(c, obs[j][1], mu[n] + (curves.mode[obs[j][1]] - val[n]), sd[n]) for n, j in enumerate(idx)]
 
 
 def _conditional(obs: list, i: int, pop: dict, c: int):
