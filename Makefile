@@ -38,7 +38,7 @@ $(TSTAMP): pyproject.toml | $(VSTAMP)
 	@touch $(TSTAMP)
 
 test: $(TSTAMP)
-	$(BIN)/python -m pytest
+	$(BIN)/python -m pytest --durations=15
 
 lint: $(TSTAMP)
 	$(BIN)/ruff check liftpool data_prep models reports tests benchmarks validation

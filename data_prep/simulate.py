@@ -106,7 +106,7 @@ FERNHOLLOW = Scenario(
     # kitchenware is researched online at length: heavy browsers (who see more ads) buy it more,
     # beyond what the placebos show; the randomized test of kitchen-refresh reveals it, the one of
     # spring-planters agrees with the placebos
-    browse_extra={"buy_kitchenware": 0.4},
+    browse_extra={"buy_kitchenware": 0.25},
     tests=(("spring-planters", 0.03), ("kitchen-refresh", 0.03)),
 )
 

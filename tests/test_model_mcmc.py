@@ -112,10 +112,14 @@ def test_no_placebo_anywhere_refuses_corrected_lift(beta_fit):
 
 @pytest.fixture(scope="module")
 def demo_fit():
+    # the demo scenario with its two randomized tests: one campaign's target has a bias its placebos
+    # do not show (an excess), which the tests reveal (data_prep/simulate.py)
+    from liftpool.data_prep.experiments import check_experiments
+
     data = simulate(seed=21, scale=0.6)
     res = prepare_counts(data["impressions"], data["conversions"], data["outcomes"], users=data["users"],
                          rules=CountingRules(unexposed=True))
-    fit = fit_counts(res.counts, ModelSettings(seed=21))
+    fit = fit_counts(res.counts, ModelSettings(seed=21), experiments=check_experiments(data["experiments"]))
     return fit, data["truth"].set_index("campaign")
 
 
@@ -131,14 +135,17 @@ def test_full_model_recovers_known_truth(demo_fit):
     naive = fit.table("lift_naive")
     t = truth.loc[lift.index, "true_lift"]
     covered = (lift["lower"] <= t) & (t <= lift["upper"])
-    assert covered.mean() >= 0.8, pd.concat([lift[["lower", "median", "upper"]], t], axis=1)
+    # 90% intervals on 8 campaigns: at least 6 covered has probability 0.96 (binomial, scipy.stats.binom.sf(5,
+    # 8, 0.9)); the tests' own noise moves the tested campaigns' intervals too
+    assert covered.sum() >= 6, pd.concat([lift[["lower", "median", "upper"]], t], axis=1)
     # the uncorrected estimate is visibly biased and the naive one wildly so (known truth of the simulator);
-    # the corrected error left (about 0.10 here) is mostly pooling of 8 campaigns toward their mean
-    assert (unc["median"] - t).mean() > 2.5 * (lift["median"] - t).abs().mean()
+    # the corrected error left (about 0.10 here) is mostly pooling of 8 campaigns toward their mean, and the
+    # two tests' excess (large on one campaign, none on the other) applied to every campaign alike
+    assert (unc["median"] - t).mean() > 2.0 * (lift["median"] - t).abs().mean()
     assert (naive["median"] > 3 * t.clip(lower=0.05)).all()
     inc = fit.table("incremental_conversions")
     tin = truth.loc[inc.index, "true_incremental_conversions"]
-    assert ((inc["lower"] <= tin) & (tin <= inc["upper"])).mean() >= 0.8
+    assert ((inc["lower"] <= tin) & (tin <= inc["upper"])).sum() >= 6
 
 
 def test_no_placebo_campaign_borrows_bias(demo_fit):
@@ -167,9 +174,11 @@ def test_summary_shape_and_pooled_rows(demo_fit):
 def test_save_load_roundtrip_and_no_overwrite(demo_fit, tmp_path):
     fit, _ = demo_fit
     out = fit.save(tmp_path / "fit1")
-    assert sorted(p.name for p in out.iterdir()) == ["estimands.nc", "fit.json", "posterior.nc",
-                                                     "predictive_check.csv", "summary.csv"]
+    assert sorted(p.name for p in out.iterdir()) == ["estimands.nc", "fit.json", "heldout_check.csv", "posterior.nc",
+                                                     "predictive_check.csv", "summary.csv", "tests.csv"]
     back = load_fit(out)
+    pd.testing.assert_frame_equal(back.tests, fit.tests, check_dtype=False)
+    pd.testing.assert_frame_equal(back.heldout, fit.heldout, check_dtype=False)
     pd.testing.assert_frame_equal(back.summary, fit.summary)
     np.testing.assert_allclose(back.estimands["lift"].values, fit.estimands["lift"].values, rtol=0, atol=0)
     pd.testing.assert_frame_equal(back.summarize(0.5), fit.summarize(0.5))
