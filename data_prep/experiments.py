@@ -27,7 +27,7 @@ import numpy as np
 import pandas as pd
 
 from liftpool.data_prep.errors import BadRow, InputError
-from liftpool.data_prep.io import read_table
+from liftpool.data_prep.io import read_user_table
 
 __all__ = ["read_experiments", "check_experiments", "MEASURES", "EXPERIMENT_COLUMNS", "TESTS_COLUMNS"]
 
@@ -51,22 +51,8 @@ def _bad(df: pd.DataFrame, mask: np.ndarray, col: str, label: str, problem: str,
 
 def read_experiments(path: str | Path, campaigns: list[str] | None = None) -> pd.DataFrame:
     """Read and convert a tests file (CSV or Parquet); see :func:`check_experiments`."""
-    p = Path(path)
-    if not p.is_file():
-        raise InputError(problem="file not found", file=str(p), fix="check the path of the randomized tests file")
-    if p.stat().st_size == 0:
-        raise InputError(problem="the file is empty", file=str(p),
-                         fix="write a header (campaign,estimate,std_error,measures,exposed_share) and one row per test")
-    try:
-        table = read_table(p)
-    except UnicodeDecodeError as exc:
-        raise InputError(problem=f"the file is not UTF-8 text (byte {exc.start})", file=str(p),
-                         fix="save the tests file as UTF-8 CSV (or Parquet)") from None
-    except Exception as exc:  # noqa: BLE001 - any reader failure is bad input
-        first = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-        raise InputError(problem=f"cannot read the file: {first}", file=str(p),
-                         fix="check that it is a valid CSV or Parquet file") from None
-    return check_experiments(table, str(p), campaigns)
+    table = read_user_table(path, "randomized tests file", "campaign,estimate,std_error,measures,exposed_share")
+    return check_experiments(table, str(Path(path)), campaigns)
 
 
 def check_experiments(df: pd.DataFrame, label: str = "randomized tests", campaigns: list[str] | None = None

@@ -18,7 +18,7 @@ import pandas as pd
 
 from liftpool.data_prep.errors import InputError
 
-__all__ = ["atomic_path", "atomic_folder", "ensure_room", "ROOM_MARGIN_BYTES", "write_table", "write_json", "write_text", "read_table", "file_sha256",
+__all__ = ["atomic_path", "atomic_folder", "ensure_room", "ROOM_MARGIN_BYTES", "write_table", "write_json", "write_text", "read_table", "read_user_table", "file_sha256",
            "input_sha256", "spreadsheet_safe", "FORMULA_STARTS"]
 
 
@@ -130,6 +130,28 @@ def read_table(path: str | os.PathLike) -> pd.DataFrame:
     if name.endswith((".parquet", ".pq")):
         return pd.read_parquet(path)
     return pd.read_csv(path, keep_default_na=False, na_values=[""])
+
+
+def read_user_table(path: str | os.PathLike, what: str, header: str) -> pd.DataFrame:
+    """A small user-given table (CSV or Parquet), every reading failure one :class:`InputError`.
+
+    ``what`` names the file in messages ("spend file"); ``header`` is the header to suggest for an
+    empty file.
+    """
+    p = Path(path)
+    if not p.is_file():
+        raise InputError(problem="file not found", file=str(p), fix=f"check the path of the {what}")
+    if p.stat().st_size == 0:
+        raise InputError(problem="the file is empty", file=str(p), fix=f"write a header ({header}) and one row each")
+    try:
+        return read_table(p)
+    except UnicodeDecodeError as exc:
+        raise InputError(problem=f"the file is not UTF-8 text (byte {exc.start})", file=str(p),
+                         fix=f"save the {what} as UTF-8 CSV (or Parquet)") from None
+    except Exception as exc:  # noqa: BLE001 - any reader failure is bad input
+        first = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        raise InputError(problem=f"cannot read the file: {first}", file=str(p),
+                         fix="check that it is a valid CSV or Parquet file") from None
 
 
 def write_json(obj, path: str | os.PathLike) -> Path:

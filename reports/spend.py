@@ -8,27 +8,14 @@ import numpy as np
 import pandas as pd
 
 from liftpool.data_prep.errors import BadRow, InputError
-from liftpool.data_prep.io import read_table
+from liftpool.data_prep.io import read_user_table
 
 __all__ = ["read_spend", "check_spend"]
 
 
 def read_spend(path) -> pd.DataFrame:
-    p = Path(path)
-    if not p.is_file():
-        raise InputError(problem="file not found", file=str(p), fix="check the path of the spend file")
-    if p.stat().st_size == 0:
-        raise InputError(problem="the file is empty", file=str(p),
-                         fix="write a header (campaign,spend[,value_per_conversion]) and one row per campaign")
-    try:
-        table = read_table(p)
-    except UnicodeDecodeError as exc:
-        raise InputError(problem=f"the file is not UTF-8 text (byte {exc.start})", file=str(p),
-                         fix="save the spend file as UTF-8 CSV (or Parquet)") from None
-    except Exception as exc:  # noqa: BLE001 - any reader failure is bad input
-        raise InputError(problem=f"cannot read the file: {str(exc).splitlines()[0] if str(exc) else type(exc).__name__}",
-                         file=str(p), fix="check that it is a valid CSV or Parquet file") from None
-    return check_spend(table, str(p))
+    table = read_user_table(path, "spend file", "campaign,spend[,value_per_conversion]")
+    return check_spend(table, str(Path(path)))
 
 
 def check_spend(df: pd.DataFrame, label: str, campaigns: list[str] | None = None) -> pd.DataFrame:
