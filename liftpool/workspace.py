@@ -296,16 +296,19 @@ class Workspace:
             rows["experiments"] = len(self.experiments())
         return rows, opened.warnings
 
-    def experiments(self, path: str | None = None) -> pd.DataFrame | None:
-        """The randomized tests (``path``, or the workspace's ``inputs.experiments``), converted; None without."""
+    def experiments(self, path: str | None = None, counts: pd.DataFrame | None = None) -> pd.DataFrame | None:
+        """The randomized tests (``path``, or the workspace's ``inputs.experiments``), converted; None without.
+
+        Their campaigns are checked against ``counts`` (by default the current counts, when prepared).
+        """
         from liftpool.data_prep.experiments import read_experiments
 
         path = path or self.config["inputs"].get("experiments")
         if not path:
             return None
-        gen = self.current()
-        camps = sorted(pd.read_parquet(gen / "counts.parquet", columns=["campaign"])["campaign"].astype(str).unique()) \
-            if gen is not None else None
+        if counts is None and self.current() is not None:
+            counts = pd.read_parquet(self.current() / "counts.parquet", columns=["campaign"])
+        camps = sorted(counts["campaign"].astype(str).unique()) if counts is not None else None
         return read_experiments(path, campaigns=camps)
 
     def current(self) -> Path | None:
@@ -462,7 +465,7 @@ class Workspace:
         """
         counts = self.counts()
         settings = self.settings(**overrides)
-        tests = self.experiments(experiments)
+        tests = self.experiments(experiments, counts)
         fit = fit_counts(counts, settings, quick=quick, groups=groups, progress=progress, progressbar=progressbar,
                          experiments=tests)
         fits = self.path / "fits"

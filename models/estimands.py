@@ -158,7 +158,10 @@ def add_money(ds: xr.Dataset, spend: pd.DataFrame) -> xr.Dataset:
             rev[..., p] = rev[..., spent].sum(axis=-1)
     with np.errstate(divide="ignore", invalid="ignore"):
         roas = np.where(spend_u > 0, rev / np.where(spend_u > 0, spend_u, 1.0), np.nan)
+    vpc_u = np.array([v_map.get(u, np.nan) if kind[i] == "campaign" and u in s_map else np.nan
+                      for i, u in enumerate(units)])
     ds["spend"] = ("unit", spend_u)
+    ds["value_per_conversion"] = ("unit", vpc_u)
     ds["incremental_revenue"] = (("chain", "draw", "unit"), rev)
     ds["return_on_ad_spend"] = (("chain", "draw", "unit"), roas)
     # the incremental conversions the portfolio's spend bought (campaigns with a spend only)

@@ -96,13 +96,15 @@ def _members(ds: xr.Dataset, unit: str) -> tuple[list[int], str]:
     return [i], kind[i]
 
 
-def _portfolio_roots(S, cf, n, target) -> np.ndarray:
-    """Per draw, the ``delta`` at which sum(S - cf(delta)) = target (bisection; +-inf outside the range)."""
+def _portfolio_roots(S, cf, n, target, w=None) -> np.ndarray:
+    """Per draw, the ``delta`` at which sum_c w_c (S_c - cf_c(delta)) = target (bisection; +-inf outside
+    the range; ``w`` 1 by default, the values per conversion for paying for itself)."""
+    w = np.ones(S.shape[-1]) if w is None else w
     lo = np.full(S.shape[0], -TIP_RANGE)
     hi = np.full(S.shape[0], TIP_RANGE)
 
     def f(dl):
-        return (S - _shift(S, cf, n, dl[:, None])).sum(-1) - target
+        return (w * (S - _shift(S, cf, n, dl[:, None]))).sum(-1) - target
 
     flo, fhi = f(lo), f(hi)
     for _ in range(50):
@@ -132,17 +134,14 @@ def tipping_points(ds: xr.Dataset, level: float, residual_sd: float | None = Non
     a = (1 - level) / 2
     names = [str(u) for u in ds.unit.values]
     kind = [str(k) for k in ds["kind"].values]
-    value = {}
-    if "incremental_revenue" in ds:
-        inc = ds["incremental_conversions"].values.reshape(-1, ds.sizes["unit"])
-        rev = ds["incremental_revenue"].values.reshape(-1, ds.sizes["unit"])
-        ratio = np.where(np.isfinite(rev) & (inc != 0), rev / np.where(inc != 0, inc, 1.0), np.nan)
-        vpc = np.full(ratio.shape[1], np.nan)  # the value per conversion (a constant per unit)
-        has = np.isfinite(ratio).any(axis=0)
-        vpc[has] = np.nanmedian(ratio[:, has], axis=0)
+    # paying for itself: the values per conversion of the campaigns with a spend (add_money), where the
+    # unit has a revenue at all (the portfolio's needs a value for each campaign with a spend)
+    paid_units = set()
+    if "value_per_conversion" in ds:
+        vpc = np.nan_to_num(ds["value_per_conversion"].values, nan=0.0)
         spend = ds["spend"].values
-        value = {i: (float(spend[i]), float(vpc[i])) for i in range(len(names))
-                 if np.isfinite(spend[i]) and np.isfinite(vpc[i]) and vpc[i] > 0}
+        rev = ds["incremental_revenue"].values.reshape(-1, ds.sizes["unit"])
+        paid_units = {i for i in range(len(names)) if np.isfinite(spend[i]) and np.isfinite(rev[:, i]).any()}
     rows = []
     for i, (u, k) in enumerate(zip(names, kind, strict=True)):
         if k not in ("campaign", "portfolio"):
@@ -157,16 +156,15 @@ def tipping_points(ds: xr.Dataset, level: float, residual_sd: float | None = Non
         star = star[~np.isnan(star)]
         row = {"campaign": u, "kind": k, "tip_interval": float(np.quantile(star, a)) if star.size else np.nan,
                "tip_positive": float(np.median(star)) if star.size else np.nan, "tip_paid": np.nan}
-        if i in value:
-            spend, vpc = value[i]
-            need = spend / vpc  # incremental conversions that pay for the spend
+        if i in paid_units:
             if k == "campaign":
                 with np.errstate(divide="ignore", invalid="ignore"):
+                    need = spend[i] / vpc[i]  # incremental conversions that pay for the spend
                     rest = (S[:, 0] - need) / n[0]
                     paid = np.where(rest > 0, logit(np.clip(rest, 1e-12, 1 - 1e-12)) - logit(np.clip(cf[:, 0] / n[0], 1e-12, 1 - 1e-12)),
                                     -np.inf)
-            else:
-                paid = _portfolio_roots(S, cf, n, need)
+            else:  # revenue summed over the campaigns with a spend, each at its own value
+                paid = _portfolio_roots(S, cf, n, spend[i], w=vpc[units])
             row["tip_paid"] = float(np.median(paid))
         lift_lo = float(np.quantile(S.sum(-1) / cf.sum(-1) - 1.0, a))
         lift_med = float(np.median(S.sum(-1) / cf.sum(-1) - 1.0))

@@ -99,3 +99,20 @@ def test_tipping_sentences():
     t = SimpleNamespace(residual_sd=None, excess={"excess_mean": {}})
     s = tipping_sentence({"tip_interval": 0.3, "tip_positive": 0.4, "tip_paid": float("nan")}, t)
     assert "what the placebos and the randomized tests show" in s and "spread" not in s
+
+
+def test_portfolio_paid_tipping_point_weighs_each_campaign_by_its_value():
+    # two campaigns with different values per conversion: at the portfolio's tipping point, the revenue
+    # summed at each campaign's own value pays for the total spend in half of the draws
+    rng = np.random.default_rng(3)
+    ds = _estimands(rng.normal([0.2, 0.1], [0.05, 0.04], (20_000, 2)))
+    inc = ds["incremental_conversions"].values[0, :, :2]
+    values = np.array([10.0, 200.0])
+    total = float(np.median(inc @ values)) * 0.7
+    spend = pd.DataFrame({"campaign": ["c0", "c1"], "spend": [total / 2, total / 2], "value_per_conversion": values})
+    t = tipping_points(add_money(ds, spend), 0.9).set_index("campaign")
+    tip = t.loc["(portfolio)", "tip_paid"]
+    S = inc + ds["counterfactual_conversions"].values[0, :, :2]
+    cf = ds["counterfactual_conversions"].values[0, :, :2]
+    cf2 = 10_000 * expit(logit(cf / 10_000) + tip)
+    assert np.mean((S - cf2) @ values > total) == pytest.approx(0.5, abs=0.01)
